@@ -1,0 +1,3 @@
+from fieldmix.cli import main
+
+raise SystemExit(main())
