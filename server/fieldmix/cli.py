@@ -1,0 +1,166 @@
+"""The ``fieldmix`` command line.
+
+Every error a person can cause (a broken file, a bad option) is printed as one
+line, ``fieldmix: error: <place>: <what>``, and the exit status is 2. No
+traceback, no partial output file.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+from typing import Optional, Sequence
+
+from . import __version__
+from .errors import FieldmixError
+
+REPO_ROOT = Path(__file__).resolve().parents[2]
+EXAMPLE_SHOW = REPO_ROOT / "configs" / "shows" / "harbour.json"
+EXAMPLE_SCRIPT = REPO_ROOT / "configs" / "shows" / "harbour.txt"
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # argparse's own errors: one line, exit 2
+        self.print_usage(sys.stderr)
+        raise SystemExit(_fail(message))
+
+
+def _fail(message: str) -> int:
+    print(f"fieldmix: error: {message}", file=sys.stderr)
+    return 2
+
+
+def _positive_float(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number of seconds, got {text!r}") from None
+    if not (v > 0 and v < 1e7):
+        raise argparse.ArgumentTypeError(f"expected a positive number of seconds, got {text!r}")
+    return v
+
+
+def cmd_layout_check(args) -> int:
+    from .layout import load_layout
+    from .panning import PanningContext
+    from .quality import assess, format_report, plot
+
+    layout = load_layout(Path(args.file))
+    ctx = PanningContext(layout)
+    rep = assess(layout, ctx)
+    print(format_report(layout, rep))
+    if args.plot:
+        out = Path(args.plot)
+        if out.suffix.lower() not in (".svg", ".png"):
+            raise FieldmixError(f"--plot: the file must end in .svg or .png, got {out.name!r}")
+        plot(layout, rep, out)
+        print(f"\nplot written to {out}")
+    return 0
+
+
+def _load_events(show, script: Optional[str]):
+    if not script:
+        return []
+    from .control import parse_script
+
+    return parse_script(Path(script), show.source_ids)
+
+
+def _print_render(result, show, events) -> None:
+    secs = result.frames / result.samplerate
+    print(
+        f"wrote {result.path}: {result.channels} channels, {secs:.2f} s at {result.samplerate} Hz, "
+        f"{len(show.sources)} sources through layout {show.layout.name}"
+        + (f", {len(events)} script events" if events else "")
+    )
+    by_out = {spk.output: spk for spk in show.layout.speakers}
+    for ch in range(1, result.channels + 1):
+        spk = by_out.get(ch)
+        label = f"{spk.id}{' (sub)' if spk.sub else ''}" if spk else "(unused)"
+        print(f"  channel {ch:>2}  {label:<14} peak {result.peak_dbfs[ch - 1]:7.1f} dB FS")
+    if result.nonfinite_inputs:
+        print(f"  {result.nonfinite_inputs} non-finite input samples were replaced by silence")
+    if result.limited_blocks:
+        print(f"  the output ceiling acted in {result.limited_blocks} blocks")
+
+
+def cmd_render(args) -> int:
+    from .render import render, text_progress
+    from .show import load_show
+
+    show = load_show(Path(args.show))
+    events = _load_events(show, args.script)
+    out = Path(args.output)
+    if out.suffix.lower() not in (".wav", ".w64", ".rf64"):
+        raise FieldmixError(f"-o: the output must be a .wav file, got {out.name!r}")
+    if not out.parent.exists():
+        raise FieldmixError(f"-o: folder {str(out.parent)!r} does not exist")
+    progress = None if args.quiet else text_progress()
+    result = render(show, out, events, duration=args.duration, blocksize=args.blocksize, progress=progress)
+    _print_render(result, show, events)
+    return 0
+
+
+def cmd_demo(args) -> int:
+    from .demo_audio import ensure_demo_audio
+    from .render import render, text_progress
+    from .show import load_show
+
+    if not EXAMPLE_SHOW.is_file():
+        raise FieldmixError(f"the example show is missing: {EXAMPLE_SHOW} (run from a clone of the repository)")
+    made = ensure_demo_audio(EXAMPLE_SHOW.parent / "audio")
+    if made:
+        print(f"synthesised {len(made)} demo audio files in {made[0].parent}")
+    show = load_show(EXAMPLE_SHOW)
+    events = _load_events(show, str(EXAMPLE_SCRIPT))
+    out = Path(args.out)
+    result = render(show, out, events, blocksize=256, progress=None if args.quiet else text_progress())
+    _print_render(result, show, events)
+    print(f"\nlisten on {show.layout.n_channels} speakers laid out as {show.layout.name}, or look at it with:")
+    print(f"  fieldmix layout check {show.layout.path} --plot layout.svg")
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="fieldmix", description="Real-time networked spatial mixing server.")
+    p.add_argument("--version", action="version", version=f"fieldmix {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    lay = sub.add_parser("layout", help="speaker layout tools")
+    lsub = lay.add_subparsers(dest="layout_command", metavar="ACTION", parser_class=_Parser)
+    chk = lsub.add_parser("check", help="validate a layout and report its quality")
+    chk.add_argument("file", help="layout JSON file")
+    chk.add_argument("--plot", metavar="FILE", help="draw the layout and its direction error (.svg or .png)")
+    chk.set_defaults(func=cmd_layout_check)
+
+    ren = sub.add_parser("render", help="render a show offline into a multichannel WAV file")
+    ren.add_argument("show", help="show JSON file")
+    ren.add_argument("-o", "--output", required=True, help="output .wav file")
+    ren.add_argument("--script", help="control script to play during the render")
+    ren.add_argument("--duration", type=_positive_float, help="seconds to render (default: the longest source file)")
+    ren.add_argument("--blocksize", type=int, default=256, help="engine block size in frames (16..4096, default 256)")
+    ren.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    ren.set_defaults(func=cmd_render)
+
+    demo = sub.add_parser("demo", help="the built-in demo: render the example show")
+    demo.add_argument("--out", default="fieldmix-demo.wav", help="output file (default fieldmix-demo.wav)")
+    demo.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    demo.set_defaults(func=cmd_demo)
+    return p
+
+
+def main(argv: Optional[Sequence[str]] = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    func = getattr(args, "func", None)
+    if func is None:
+        parser.print_help(sys.stderr)
+        return 2
+    try:
+        return int(func(args) or 0)
+    except FieldmixError as exc:
+        return _fail(str(exc))
+    except KeyboardInterrupt:
+        print("\ninterrupted", file=sys.stderr)
+        return 130
