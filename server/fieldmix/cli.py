@@ -118,7 +118,12 @@ def cmd_demo(args) -> int:
     result = render(show, out, events, blocksize=256, progress=None if args.quiet else text_progress())
     _print_render(result, show, events)
     print(f"\nlisten on {show.layout.n_channels} speakers laid out as {show.layout.name}, or look at it with:")
-    print(f"  fieldmix layout check {show.layout.path} --plot layout.svg")
+    lay_path = Path(show.layout.path)
+    try:
+        lay_path = lay_path.resolve().relative_to(Path.cwd().resolve())
+    except ValueError:
+        pass
+    print(f"  fieldmix layout check {lay_path} --plot layout.svg")
     return 0
 
 

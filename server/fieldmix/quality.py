@@ -23,7 +23,7 @@ import numpy as np
 
 from . import geometry
 from .model import Layout
-from .panning import PanningContext
+from .panning import PanningContext, gerzon_vectors, speaker_unit_vectors
 
 AZ_STEP_DEG = 5.0
 GAP_WARN_DEG = 90.0
@@ -50,13 +50,6 @@ class QualityReport:
     warnings: list[str] = field(default_factory=list)
 
 
-def energy_vectors(gains: np.ndarray, units: np.ndarray) -> np.ndarray:
-    """rE for each row of ``gains`` (S, K) with speaker unit vectors ``units`` (K, 3)."""
-    g2 = gains**2
-    tot = g2.sum(axis=1, keepdims=True)
-    return (g2 @ units) / np.where(tot > 0, tot, 1.0)
-
-
 def _ranges(az: np.ndarray, mask: np.ndarray) -> list[tuple[float, float]]:
     """Contiguous azimuth ranges (degrees) where ``mask`` holds, on a circular sweep."""
     out: list[tuple[float, float]] = []
@@ -78,8 +71,24 @@ def _ranges(az: np.ndarray, mask: np.ndarray) -> list[tuple[float, float]]:
 
 
 def _fmt_range(r: tuple[float, float]) -> str:
+    """A sweep range in increasing azimuth (leftwards); one that wraps goes through the back."""
     a, b = r
-    return f"{a:+.0f}" if a == b else f"{a:+.0f} to {b:+.0f}"
+    if a == b:
+        return f"{a:+.0f}"
+    if (a, b) == (-180.0, 180.0):
+        return "all round"
+    return f"{a:+.0f} to {b:+.0f}" + (" (through the back)" if b < a else "")
+
+
+def elevation_rings(elevations, tolerance: float = 10.0) -> list[float]:
+    """Group speaker elevations into rings: within ``tolerance`` of a ring's lowest member."""
+    rings: list[list[float]] = []
+    for e in sorted(elevations):
+        if rings and e - rings[-1][0] <= tolerance:
+            rings[-1].append(e)
+        else:
+            rings.append([e])
+    return [round(float(np.mean(r)), 1) for r in rings]
 
 
 def assess(layout: Layout, ctx: PanningContext | None = None) -> QualityReport:
@@ -87,9 +96,9 @@ def assess(layout: Layout, ctx: PanningContext | None = None) -> QualityReport:
     kind = layout.panner
     ctx.check(kind)
     main = [layout.speakers[i] for i in layout.main_indices]
-    units = geometry.unit(np.array([s.position for s in layout.speakers], dtype=np.float64))
-    ref = layout.options.reference_distance or float(np.mean([s.distance for s in main]))
-    elevations = sorted({round(s.elevation) for s in main})
+    units = speaker_unit_vectors(layout)
+    ref = ctx.reference_distance
+    elevations = elevation_rings([s.elevation for s in main])
     if kind == "pairwise":
         elevations = [0]  # pairwise pans on the ear-level ring only
     az = np.arange(-180.0 + AZ_STEP_DEG, 180.0 + 1e-9, AZ_STEP_DEG)
@@ -98,7 +107,7 @@ def assess(layout: Layout, ctx: PanningContext | None = None) -> QualityReport:
     for el in elevations:
         target = geometry.sph_to_cart(az, np.full_like(az, el), ref)
         g = ctx.gains(target, np.zeros(len(az)), kind)
-        re = energy_vectors(g, units)
+        _, re = gerzon_vectors(g, units)
         err = geometry.angle_between_deg(re, target)
         rlen = np.linalg.norm(re, axis=1)
         rings.append(RingReport(float(el), az, err, rlen))

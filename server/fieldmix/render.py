@@ -189,8 +189,17 @@ def render(
 def text_progress(stream=None, width: int = 30) -> ProgressFn:
     """A plain progress bar on stderr (one line, redrawn)."""
     stream = stream or sys.stderr
+    tty = hasattr(stream, "isatty") and stream.isatty()
+    last = [-1]
 
     def report(frac: float) -> None:
+        if not tty:  # a log file: a line at every quarter, no redraws
+            q = int(frac * 4)
+            if q > last[0]:
+                last[0] = q
+                stream.write(f"rendering {q * 25:3d}%\n")
+                stream.flush()
+            return
         done = int(round(frac * width))
         stream.write(f"\rrendering [{'#' * done}{'.' * (width - done)}] {frac * 100:5.1f}%")
         if frac >= 1.0:
