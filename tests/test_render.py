@@ -112,3 +112,67 @@ def test_demo_renders(tmp_path):
     assert y.shape[0] > 10 * sr and np.isfinite(y).all()
     assert np.abs(y).max() <= 10 ** (-1 / 20) + 1e-6  # the ceiling (-1 dB FS) holds
     assert (np.sqrt((y**2).mean(axis=0)) > 1e-4).sum() >= 4  # sound reaches several speakers
+
+
+def _two_tone(path, sr=48000, seconds=2.0):
+    """50 Hz + 2 kHz, each at amplitude 0.2."""
+    t = np.arange(int(seconds * sr)) / sr
+    x = 0.2 * np.sin(2 * np.pi * 50 * t) + 0.2 * np.sin(2 * np.pi * 2000 * t)
+    sf.write(str(path), x.astype(np.float32), sr, subtype="FLOAT")
+
+
+def _band_level(x, sr, f):
+    """Amplitude of the component at frequency f (a whole number of periods in x)."""
+    n = len(x)
+    spec = np.abs(np.fft.rfft(x * np.hanning(n))) / (n / 4)
+    k = int(round(f * n / sr))
+    return float(spec[k - 2 : k + 3].max())
+
+
+def test_direct_panner_and_sub_send_through_the_render(tmp_path):
+    """`direct` feeds named speakers at fixed gains; the sub gets only the low end of the sub send.
+
+    Sub crossover: Linkwitz-Riley 4th order low-pass at 80 Hz (common practice, no source):
+    50 Hz passes (about -0.6 dB, computed from the LR4 magnitude), 2 kHz is more than 100 dB down.
+    """
+    lay = {
+        "panner": "vbap",
+        "crossover_hz": 80,
+        "speakers": [
+            {"id": "L", "output": 1, "azimuth": 30, "distance": 2},
+            {"id": "R", "output": 2, "azimuth": -30, "distance": 2},
+            {"id": "mon", "output": 3, "azimuth": 0, "distance": 1},
+            {"id": "LFE", "output": 4, "azimuth": 0, "elevation": -20, "distance": 2, "sub": True},
+        ],
+    }
+    show = {
+        "layout": "lay.json",
+        "sources": [
+            {"id": "vox", "input": 1, "file": "two.wav", "panner": "direct", "direct": {"mon": -6}},
+            {"id": "kick", "input": 2, "file": "two.wav", "azimuth": 30, "sub_send_db": 0},
+        ],
+    }
+    write_files(tmp_path, {"lay.json": lay, "show.json": show})
+    _two_tone(tmp_path / "two.wav")
+    out = tmp_path / "o.wav"
+    r = run_cli("render", tmp_path / "show.json", "-o", out, "-q")
+    assert r.returncode == 0, r.stderr
+    y, sr = sf.read(str(out), always_2d=True)
+    seg = slice(int(1.2 * sr), int(1.2 * sr) + sr // 2)  # 0.5 s: whole periods of 50 Hz and 2 kHz
+    left, right, mon, sub = (y[seg, k] for k in range(4))  # file channel = output - 1
+    # direct: the monitor carries only vox at -6 dB (kick is at +30, on L alone)
+    assert abs(20 * math.log10(_band_level(mon, sr, 2000) / 0.2) - (-6.0)) < 0.1
+    assert _band_level(left, sr, 2000) == pytest.approx(0.2, rel=0.02)
+    assert _band_level(right, sr, 2000) < 1e-4
+    # sub: LR4 low-pass of the send
+    lr4_50 = 1.0 / (1.0 + (50.0 / 80.0) ** 4)  # |H_LR4(f)| = 1 / (1 + (f/fc)^4)
+    assert _band_level(sub, sr, 50) == pytest.approx(0.2 * lr4_50, rel=0.03)
+    assert _band_level(sub, sr, 2000) < 0.2 * 1e-5
+
+
+def test_render_rejects_nothing_to_render(tmp_path):
+    show = _show()
+    del show["sources"][0]["file"]
+    write_files(tmp_path, {"pair.json": STEREO_VBAP, "show.json": show})
+    r = run_cli("render", tmp_path / "show.json", "-o", tmp_path / "o.wav", "-q")
+    assert r.returncode == 2 and "--duration" in r.stderr
