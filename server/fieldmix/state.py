@@ -93,6 +93,8 @@ class ShowState:
         self.master_gain_db = float(show.master_gain_db)
         self.master_mute = False
         self.version = 0
+        self._pan: Optional[np.ndarray] = None  # cached pan matrix; rows in _dirty are stale
+        self._dirty: set[int] = set()
         self._layout: Layout
         self._ctx: PanningContext
         self.set_layout(layout or show.layout)
@@ -116,6 +118,7 @@ class ShowState:
                 ctx.direct_gains(s.spec.direct)  # raises ConfigError for unknown speakers
         self._layout = layout
         self._ctx = ctx
+        self._pan = None
         self.version += 1
 
     @property
@@ -156,6 +159,8 @@ class ShowState:
             src.spread = float(v[0])
         else:  # pragma: no cover
             raise ValueError(f"unknown source parameter {cmd.param!r}")
+        if cmd.param not in ("gain", "mute"):
+            self._dirty.add(cmd.source)
         self.version += 1
 
     def apply_all(self, cmds: Iterable) -> None:
@@ -164,11 +169,25 @@ class ShowState:
 
     # ------------------------------------------------------------------ gains
     def pan_matrix(self) -> np.ndarray:
-        """(n_sources, n_speakers) panning gains, float64, sub columns zero."""
-        n_spk = len(self._layout.speakers)
-        out = np.zeros((len(self.sources), n_spk), dtype=np.float64)
+        """(n_sources, n_speakers) panning gains, float64, sub columns zero.
+
+        Rows are cached: only sources whose position or spread changed since the last
+        call are panned again (a stream of moves of one source costs one row).
+        """
+        if self._pan is None:
+            self._pan = np.zeros((len(self.sources), len(self._layout.speakers)), dtype=np.float64)
+            rows = range(len(self.sources))
+        else:
+            rows = sorted(self._dirty)
+        self._dirty.clear()
+        if rows:
+            self._pan_rows(self._pan, rows)
+        return self._pan.copy()
+
+    def _pan_rows(self, out: np.ndarray, rows) -> None:
         groups: dict[str, list[int]] = {}
-        for i, s in enumerate(self.sources):
+        for i in rows:
+            s = self.sources[i]
             if s.panner == "direct":
                 out[i] = self._ctx.direct_gains(s.spec.direct)
             else:
@@ -177,7 +196,6 @@ class ShowState:
             pos = np.stack([self.sources[i].position for i in idx])
             spr = np.array([self.sources[i].spread for i in idx], dtype=np.float64)
             out[idx] = self._ctx.gains(pos, spr, kind)
-        return out
 
     @property
     def has_sub_bus(self) -> bool:
