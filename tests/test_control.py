@@ -215,8 +215,13 @@ def test_messages_name_the_address():
 
 
 def _glob(pattern, candidates):
-    # a stand-in matcher for the hook (shell globbing, not OSC 1.0): enough to test the wiring
-    return [i for i, c in enumerate(candidates) if fnmatch.fnmatchcase(c, pattern)]
+    # a stand-in matcher for the hook (shell globbing, not OSC 1.0): enough to test the wiring;
+    # a candidate is a name or a tuple of names (a source's id and its 1-based index)
+    return [
+        i
+        for i, c in enumerate(candidates)
+        if any(fnmatch.fnmatchcase(n, pattern) for n in ((c,) if isinstance(c, str) else c))
+    ]
 
 
 def test_match_hook_selects_several_sources():
@@ -464,7 +469,7 @@ def test_line_numbers_count_newlines_only():
 
 
 def _exact(pattern, candidates):
-    return [i for i, c in enumerate(candidates) if c == pattern]
+    return [i for i, c in enumerate(candidates) if pattern in ((c,) if isinstance(c, str) else c)]
 
 
 @pytest.mark.parametrize(
@@ -496,3 +501,9 @@ def test_azimuth_wrap_agrees_with_geometry():
         got = one("/source/vox/azimuth", float(a)).value[0]
         assert got == pytest.approx(float(geometry.wrap_deg(a)), abs=1e-9)
         assert -180.0 < got <= 180.0
+
+
+def test_match_hook_sees_ids_and_indices():
+    """`/source/[1-2]/spread 30`: a pattern over 1-based indices selects those sources."""
+    cmds = parse_message("/source/[1-2]/spread", (30,), IDS, match=_glob)
+    assert [c.source for c in cmds] == [0, 1]

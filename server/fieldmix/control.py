@@ -40,7 +40,7 @@ from typing import Callable, Mapping, Optional, Sequence
 from fieldmix.errors import ConfigError, ControlError
 from fieldmix.jsonload import decode_utf8, oneline, read_bytes
 
-MatchFn = Callable[[str, Sequence[str]], Sequence[int]]
+MatchFn = Callable[[str, Sequence], Sequence[int]]  # candidates: names, or tuples of names (id, index)
 
 RESERVED_PREFIXES = ("/cue",)
 
@@ -303,7 +303,9 @@ def _resolve_sources(part: str, source_ids: Sequence[str], match: Optional[Match
             "unknown_source", f"no source number {k}: the show has {n} source{'s' if n != 1 else ''} (1..{n})"
         )
     if match is not None:
-        found = sorted(set(int(i) for i in match(part, list(source_ids))))
+        # each source answers to its id and to its 1-based index ("/source/[1-4]/spread")
+        cands = [(sid, str(i + 1)) for i, sid in enumerate(source_ids)]
+        found = sorted(set(int(i) for i in match(part, cands)))
         if found and all(0 <= i < n for i in found):
             return tuple(found)
     else:

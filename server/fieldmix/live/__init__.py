@@ -1,0 +1,1 @@
+"""The live daemon: show state + audio child link + control transports (OSC, web)."""
