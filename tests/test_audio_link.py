@@ -486,7 +486,9 @@ def test_block_path_allocates_no_arrays(tmp_path, backend):
         assert child.blocks >= 660 and child._frame > 100  # it really ran, and published meters
         assert child.slot.reader.torn >= 5
         assert child.slot.reader.version == int(seg.ctl[S.C_VERSION])  # every push was taken
-        assert worst < out.nbytes / 4, worst  # 4 KB: small Python objects only
+        # 8 KB: small Python objects only (seen up to 4.3 KB in a fresh venv); one block-sized
+        # array (16 KB) would fail this
+        assert worst < out.nbytes / 2, worst
         assert np.abs(out).max() > 0  # and it made sound (after the panic was released)
         if backend == "device":  # source i listens to device input 8 - i (input_channels 8..1)
             want = np.sqrt(np.mean(indata[:, ::-1].astype(np.float64) ** 2, axis=0))
