@@ -127,6 +127,55 @@ def cmd_demo(args) -> int:
     return 0
 
 
+def _serve_options(args, show: Path):
+    from .live.daemon import ServeOptions
+
+    return ServeOptions(
+        show=show,
+        device=args.device,
+        virtual=getattr(args, "virtual", False),
+        samplerate=args.samplerate,
+        blocksize=args.blocksize,
+        osc_port=args.osc_port,
+        http_port=args.http_port,
+        listen=args.listen,
+        token=args.token,
+        allow=args.allow or [],
+        advertise=not args.no_advertise,
+        fresh=args.fresh,
+        state_file=Path(args.state) if args.state else None,
+        record=Path(args.record) if args.record else None,
+    )
+
+
+def cmd_serve(args) -> int:
+    from .live.daemon import serve
+
+    return serve(_serve_options(args, Path(args.show)))
+
+
+def cmd_devices(args) -> int:
+    from .audio.devices import format_table, query
+
+    print(format_table(query()))
+    return 0
+
+
+def _add_serve_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--device", help="audio interface by index or part of its name")
+    p.add_argument("--samplerate", type=int, default=48000, help="sample rate in Hz (default 48000)")
+    p.add_argument("--blocksize", type=int, default=128, help="block size in frames (default 128)")
+    p.add_argument("--osc-port", type=int, help="OSC port, UDP and TCP (default 9000)")
+    p.add_argument("--http-port", type=int, help="HTTP port of the control page (default 8080)")
+    p.add_argument("--listen", help="address to listen on (default 127.0.0.1; 0.0.0.0 opens the network)")
+    p.add_argument("--token", help="control token (required beyond loopback; generated if not given)")
+    p.add_argument("--allow", action="append", metavar="CIDR", help="accept OSC only from this network (repeatable)")
+    p.add_argument("--no-advertise", action="store_true", help="do not advertise over DNS-SD")
+    p.add_argument("--fresh", action="store_true", help="start from the show file, ignoring the saved state")
+    p.add_argument("--state", metavar="FILE", help="state autosave file (default: beside the show file)")
+    p.add_argument("--record", metavar="FILE.wav", help="write the speaker feeds to a WAV file")
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="fieldmix", description="Real-time networked spatial mixing server.")
     p.add_argument("--version", action="version", version=f"fieldmix {__version__}")
@@ -147,6 +196,15 @@ def build_parser() -> argparse.ArgumentParser:
     ren.add_argument("--blocksize", type=int, default=256, help="engine block size in frames (16..4096, default 256)")
     ren.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
     ren.set_defaults(func=cmd_render)
+
+    srv = sub.add_parser("serve", help="run the live server on a show")
+    srv.add_argument("show", help="show JSON file")
+    srv.add_argument("--virtual", action="store_true", help="use the virtual audio device (plays the sources' files)")
+    _add_serve_options(srv)
+    srv.set_defaults(func=cmd_serve)
+
+    dev = sub.add_parser("devices", help="list audio host APIs and devices")
+    dev.set_defaults(func=cmd_devices)
 
     demo = sub.add_parser("demo", help="the built-in demo: render the example show")
     demo.add_argument("--out", default="fieldmix-demo.wav", help="output file (default fieldmix-demo.wav)")
