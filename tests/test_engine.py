@@ -13,10 +13,21 @@ import numpy as np
 import pytest
 import scipy.signal
 
+from fieldmix import _kernels
 from fieldmix.engine import Engine, peak_dbfs, rms_dbfs
 from fieldmix.errors import ConfigError, ControlError
 
 FS = 48000
+
+KERNELS = ["numpy", pytest.param("numba", marks=pytest.mark.skipif(
+    not _kernels.available(), reason=f"numba not importable: {_kernels.IMPORT_ERROR}"))]
+
+
+@pytest.fixture(autouse=True, params=KERNELS)
+def kernels(request, monkeypatch):
+    """Every test in this file runs on both elementwise paths (FIELDMIX_KERNELS)."""
+    monkeypatch.setenv("FIELDMIX_KERNELS", request.param)
+    return request.param
 
 
 def make(n_in=2, n_out=2, **kw):
@@ -621,3 +632,141 @@ def test_no_allocation_on_the_rare_paths_either(case):
     if case == "fade-in":
         assert 0.0 < eng.envelope < 1.0
 
+
+
+# ---------------------------------------------------------------- the two elementwise paths
+def test_engine_runs_the_kernels_asked_for(kernels, monkeypatch):
+    eng = make(3, 4)
+    assert eng.kernels == kernels
+    monkeypatch.setenv("FIELDMIX_KERNELS", "fast")
+    with pytest.raises(ConfigError, match="FIELDMIX_KERNELS"):
+        make(3, 4)
+
+
+def _scenario(kind, monkeypatch):
+    """A hard block sequence: ramps and retargets, sub bus, delays and a delay change,
+    non-finite and huge input, the limiter acting, a fade; returns outputs, meters, counters."""
+    monkeypatch.setenv("FIELDMIX_KERNELS", kind)
+    rng = np.random.default_rng(21)
+    n_in, n_out = 7, 5
+    eng = make(n_in, n_out, sub_outputs=(4,), max_delay_ms=20.0, glide_ms=5.0, fade_in_ms=3.0)
+    assert eng.kernels == kind
+    eng.set_delays([0, 3, 17, 0, 5])
+    outs, meters = [], []
+    for k in range(60):
+        F = int(rng.choice([16, 33, 64, 100, 256]))
+        if k % 4 == 0:
+            eng.set_target(rng.uniform(0.0, 1.5 if k > 30 else 0.3, (n_in, n_out + 1)))
+        if k == 20:
+            eng.set_delays([4, 0, 9, 2, 0])
+        x = (rng.standard_normal((F, n_in)) * (2.0 if 40 <= k < 45 else 0.2)).astype(np.float32)
+        if k in (10, 11):
+            x[F // 2, 3] = np.nan
+            x[0, 0] = np.inf
+            x[1, 6] = -3.0e9  # finite, beyond INPUT_LIMIT: clamped
+        outs.append(eng.process(x).copy())
+        meters.append(np.concatenate([eng.in_peak, eng.in_rms, eng.out_peak, eng.out_rms]))
+    return np.concatenate(outs), np.array(meters), (eng.nonfinite_count, eng.limited_blocks), eng.current_gains()
+
+
+@pytest.mark.skipif(not _kernels.available(), reason="numba not importable")
+@pytest.mark.parametrize("kernels", ["numpy"], indirect=True)  # runs once, builds both itself
+def test_numba_and_numpy_paths_agree(kernels, monkeypatch):
+    """Same blocks through both paths: outputs, meters and counters agree within float32 rounding."""
+    y_np, m_np, c_np, g_np = _scenario("numpy", monkeypatch)
+    y_nb, m_nb, c_nb, g_nb = _scenario("numba", monkeypatch)
+    assert np.all(np.isfinite(y_nb)) and np.all(np.isfinite(y_np))
+    assert c_np == c_nb and c_np[0] == 2 * 2 and c_np[1] > 0
+    np.testing.assert_allclose(y_nb, y_np, rtol=1e-5, atol=2e-6)
+    np.testing.assert_allclose(m_nb, m_np, rtol=2e-5, atol=1e-6)
+    np.testing.assert_allclose(g_nb, g_np, rtol=1e-6, atol=1e-7)
+    # the sample peaks are exact on both paths (max |x| of what was metered)
+    assert np.max(np.abs(y_nb)) <= make(1, 1).ceiling
+
+
+@pytest.mark.parametrize("kernels", [KERNELS[1]], indirect=True)
+def test_compiled_kernels_allocate_nothing(kernels):
+    """tracemalloc does not see numba's allocator: check the kernels' machine code instead.
+
+    Each kernel is compiled afresh (no cache) from its Python source, and its LLVM IR must
+    not call the numba runtime's allocator; a variant with one np.empty does, so the
+    check can fail."""
+    import numba
+
+    def ir_of(pyfunc, args):
+        f = numba.njit(nogil=True, boundscheck=False, error_model="numpy")(pyfunc)
+        f(*args)
+        return "\n".join(f.inspect_llvm().values())
+
+    N, M, F = 3, 2, 4
+    Z = np.zeros((F, 2 * N + M + 1), np.float32)
+    Zi = Z.view(np.int32)
+    x = np.zeros((F, N), np.float32)
+    acc = np.zeros(8, np.float32)
+    pki = np.zeros(N + M, np.int32)
+    mv = np.zeros(2 * (N + M), np.float32)
+    P = np.zeros((2, 3, N * M), np.float32)
+    lim = np.float32(1e6)
+    cases = [
+        (_kernels.block_in.py_func, (x, Z, Zi, F, 0.0, 1e30, True, float(lim), int(lim.view(np.int32)), acc, pki, mv)),
+        (_kernels.block_out.py_func, (Z, Zi, F, 2 * N, acc, pki, mv)),
+        (_kernels.bank_update.py_func, (1.0, 0.0, 0.0, 0.0, 1.0, 0.0, P[0], P[1])),
+        (_kernels.target_in.py_func, (np.zeros((N, M)), np.zeros((N, M), np.float32), 1.0, np.zeros(M))),
+    ]
+    for fn, args in cases:
+        ir = ir_of(fn, args)
+        assert "NRT_MemInfo_alloc" not in ir and "NRT_Allocate" not in ir, fn.__name__
+
+    def allocating(n):
+        return np.empty(n, np.float32)
+
+    ir = ir_of(allocating, (3,))
+    assert "NRT_MemInfo_alloc" in ir or "NRT_Allocate" in ir
+
+
+@pytest.mark.parametrize("kernels", [KERNELS[1]], indirect=True)
+def test_kernels_never_compile_on_an_audio_block(kernels):
+    """Compilation happens when the Engine is built; afterwards the dispatchers refuse to compile."""
+    eng = make(4, 4)
+    n_before = {k: len(k.signatures) for k in (_kernels.block_in, _kernels.block_out,
+                                                _kernels.bank_update, _kernels.target_in)}
+    assert all(n_before.values())
+    x = np.ones((32, 4), np.float32)
+    ro = x.copy()
+    ro.flags.writeable = False  # another numba type: the engine copies it instead
+    for G in (np.eye(4), np.eye(4, dtype=np.float32), np.eye(4, dtype=np.int64), [[0.5] * 4] * 4):
+        eng.set_target(G)
+        eng.process(x)
+        eng.process(ro)
+    assert {k: len(k.signatures) for k in n_before} == n_before
+
+
+@pytest.mark.parametrize("kernels", ["numpy"], indirect=True)
+def test_runs_without_numba(kernels):
+    """With numba not importable the engine takes the numpy path; forcing numba then fails clearly."""
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    code = (
+        "import sys; sys.modules['numba'] = None\n"  # an import of numba now raises ImportError
+        "import numpy as np\n"
+        "from fieldmix.engine import Engine\n"
+        "e = Engine(2, 2, 48000, fade_in_ms=0.0); e.set_target(np.eye(2))\n"
+        "y = e.process(np.ones((64, 2), np.float32))\n"
+        "print(e.kernels, float(y[-1, 0]))\n"
+        "import os; os.environ['FIELDMIX_KERNELS'] = 'numba'\n"
+        "from fieldmix.errors import ConfigError\n"
+        "try:\n    Engine(2, 2, 48000)\nexcept ConfigError as exc:\n    print('refused', 'FIELDMIX_KERNELS' in str(exc))\n"
+    )
+    env = dict(os.environ)
+    env.pop("FIELDMIX_KERNELS", None)
+    server = str(Path(__file__).resolve().parents[1] / "server")
+    env["PYTHONPATH"] = server + os.pathsep + env.get("PYTHONPATH", "")
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    lines = out.stdout.split("\n")
+    assert lines[0].split()[0] == "numpy"
+    assert abs(float(lines[0].split()[1]) - 64 / 1440) < 1e-6  # the first ramp: 64 of 1440 samples
+    assert lines[1] == "refused True"

@@ -20,6 +20,9 @@ the offline renderer.  docs/engine.md explains the design; the short version:
 * Meters per input and output (sample peak and RMS of the last block).
 * No allocation per block in steady state: every buffer is preallocated and
   every numpy call writes into it with ``out=``.
+* Two paths for the elementwise work around the product: compiled kernels
+  (``_kernels.py``, numba, when it imports) or numpy; ``FIELDMIX_KERNELS``
+  (numba|numpy|auto) forces one.  Same results within float32 rounding.
 
 Trims, source gains and master gain/mute are folded into G by the control
 layer; the engine only sees G.
@@ -37,6 +40,7 @@ from .errors import ConfigError, ControlError
 __all__ = ["Engine", "peak_dbfs", "rms_dbfs", "MAX_GAIN", "INPUT_LIMIT"]
 
 _F32 = np.dtype(np.float32)
+_NB_TARGET_DTYPES = (np.dtype(np.float64), np.dtype(np.float32))  # set_target dtypes the kernel takes
 _copyto = np.copyto
 _vdot = np.vdot
 _matmul = np.matmul
@@ -289,6 +293,24 @@ class Engine:
             _num(crossover_hz, "engine.crossover_hz", 0.0, fs / 2.0)
             self._filt = None
 
+        # ---- elementwise kernels: compiled (numba) or numpy, chosen here, compiled here ----
+        from . import _kernels  # here, not at module import: importing numba takes ~0.5 s
+
+        self.kernels = _kernels.choose()
+        self._nb = self.kernels == "numba"
+        self._acc = np.zeros(max(N, M), dtype=np.float32)  # kernel scratch: sums of squares
+        self._acc64 = np.zeros(Mb, dtype=np.float64)  # kernel scratch: set_target's check
+        self._pki = np.zeros(N + M, dtype=np.int32)  # kernel scratch: peaks as float32 bit patterns
+        self._Zi = self._Z.view(np.int32)
+        lim32 = np.float32(INPUT_LIMIT)
+        self._lim = float(lim32)
+        self._lim_bits = int(lim32.view(np.int32))
+        if self._nb:  # (choose() has compiled the kernels: never on an audio block)
+            self._k_in = _kernels.block_in
+            self._k_out = _kernels.block_out
+            self._k_bank = _kernels.bank_update
+            self._k_target = _kernels.target_in
+
         self._vcache = {}
         self._v = None
         self._set_frames(min(MB, 256))
@@ -403,6 +425,13 @@ class Engine:
             raise ValueError(f"Engine.set_target: expected a float array of shape ({N}, {M})"
                              + (f" or ({N}, {Mb})" if Mb != M else "") + f", got {G.dtype} {sh}")
         T = self._bk[3]
+        if self._nb and not self._has_sub and G.dtype in _NB_TARGET_DTYPES and G.flags.c_contiguous \
+                and G.flags.aligned:
+            # one compiled pass: the check, then the copy (only if the check passed)
+            if not self._k_target(G, T, MAX_GAIN * MAX_GAIN, self._acc64) <= MAX_GAIN * MAX_GAIN:
+                self._refuse(G)
+            self._target_pending = True
+            return
         if self._has_sub:  # the sub output columns are ignored: check and keep the rest
             st = self._stage
             if sh[1] == Mb:
@@ -432,6 +461,12 @@ class Engine:
 
     def _bank_update(self, k00, k01, k02, k10, k11, k12) -> None:
         """P_next = K @ P_cur with K = [[k00 k01 k02], [k10 k11 k12], [0 0 1]]; then swap."""
+        nxt = 1 - self._cur
+        if self._nb:
+            self._k_bank(k00, k01, k02, k10, k11, k12, self._bk[0], self._bank[nxt][0])
+            self._cur = nxt
+            self._bk = self._bank[nxt]
+            return
         K = self._K
         K[0, 0] = k00
         K[0, 1] = k01
@@ -440,7 +475,6 @@ class Engine:
         K[1, 1] = k11
         K[1, 2] = k12
         K[2, 2] = 1.0
-        nxt = 1 - self._cur
         np.matmul(K, self._bk[0], out=self._bank[nxt][0])
         self._cur = nxt
         self._bk = self._bank[nxt]
@@ -576,6 +610,8 @@ class Engine:
         if not x.flags.c_contiguous:  # (allocates; pass C-contiguous blocks on the audio path)
             _copyto(v.xin, x)
             x = v.xin
+        if self._nb:
+            return self._process_nb(x, v)
         zx = v.zx
 
         # 1. input in, checked: the sum of squares is finite and small only if every sample is
@@ -633,6 +669,53 @@ class Engine:
 
         # 7. ceiling
         pk = _maxreduce(self.out_peak)
+        if pk <= self._c32 and self._lim_g == 1.0:
+            self.limiter_active = False
+        else:
+            self._limit(F, v, float(pk))
+        self._started = True
+        return v.zyo
+
+    def _process_nb(self, x: np.ndarray, v: _Views) -> np.ndarray:
+        """process() with the compiled kernels: in (copy, w*x, check, input meters), BLAS, out."""
+        F = v.frames
+        if not (x.flags.writeable and x.flags.aligned):  # another kernel signature: copy it
+            _copyto(v.xin, x)
+            x = v.xin
+        if self._target_pending:
+            self._apply_target(F)
+        if self._d_has_pending:
+            self._delay_pending()
+        ring_on = self._ring_on
+        dest = self._ring[self._t:self._t + F] if ring_on else v.zy
+        if self._ramp:
+            q = self._q
+            if q + F > v.wlim:
+                self._fold()
+                q = 0
+            rem = self._L - self._p
+            bad = self._k_in(x, self._Z, self._Zi, F, float(q), float(q + rem) if rem < F else 1.0e30, True,
+                             self._lim, self._lim_bits, self._acc, self._pki, self._mv)
+            _matmul(v.zs, self._bk[1], dest)
+            self._p += F
+            self._q = q + F
+            if self._p >= self._L:  # the ramp is over: the gains are the target, exactly
+                self._bank_update(0.0, 0.0, 0.0, 0.0, 0.0, 1.0)
+                self._ramp = False
+                self._q = 0
+        else:
+            bad = self._k_in(x, self._Z, self._Zi, F, 0.0, 1.0e30, False, self._lim, self._lim_bits,
+                             self._acc, self._pki, self._mv)
+            _matmul(v.zx, self._bk[2], dest)
+        if bad:
+            self.nonfinite_count += bad
+        if self._has_sub:
+            self._sub_bus(dest, v)
+        if ring_on:
+            self._delay_read(F, v)
+        if self._env_active:
+            self._envelope(F, v)
+        pk = self._k_out(self._Z, self._Zi, F, 2 * self.n_inputs, self._acc, self._pki, self._mv)
         if pk <= self._c32 and self._lim_g == 1.0:
             self.limiter_active = False
         else:
