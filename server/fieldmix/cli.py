@@ -172,7 +172,7 @@ def _add_serve_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--allow", action="append", metavar="CIDR", help="accept OSC only from this network (repeatable)")
     p.add_argument("--no-advertise", action="store_true", help="do not advertise over DNS-SD")
     p.add_argument("--fresh", action="store_true", help="start from the show file, ignoring the saved state")
-    p.add_argument("--state", metavar="FILE", help="state autosave file (default: beside the show file)")
+    p.add_argument("--state", metavar="FILE", help="state autosave file (default: in the per-user state folder, see docs/operations.md)")
     p.add_argument("--record", metavar="FILE.wav", help="write the speaker feeds to a WAV file")
 
 

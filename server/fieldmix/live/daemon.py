@@ -93,16 +93,10 @@ class Daemon:
         from . import persist
 
         path = self.opts.state_file or persist.default_path(self.show)
+        self.state_path = path
+        for note in persist.resume(self.core, path, fresh=self.opts.fresh) or ():
+            log.info("state: %s", note)
         self.store = persist.StateStore(path, self.core)
-        if self.opts.fresh:
-            log.info("--fresh: starting from the show file, not from %s", path)
-            return
-        data = persist.load(path)
-        if data:
-            notes = persist.apply_saved(self.core, data)
-            log.info("resumed the saved state from %s", path)
-            for n in notes or ():
-                log.info("  %s", n)
 
     def _start_audio(self) -> None:
         from ..audio.link import AudioLink
@@ -157,7 +151,7 @@ class Daemon:
                 from .discovery import Advertiser
 
                 self.advertiser = Advertiser(self.show.raw.get("name") or "fieldmix", self.osc.udp_port, self.web.port, self.host)
-                await self.advertiser.start()
+                await self.advertiser.start(wait=False)
             except Exception as exc:  # DNS-SD is a convenience: never stop the show for it
                 log.warning("DNS-SD advertising is off: %s", exc)
                 self.advertiser = None
