@@ -105,7 +105,7 @@ def test_render_channel_per_output_and_unused_silent(tmp_path):
 def test_demo_renders(tmp_path):
     """The built-in demo renders the example show and says what it wrote."""
     out = tmp_path / "demo.wav"
-    r = run_cli("demo", "--out", out, "-q", timeout=300)
+    r = run_cli("demo", "--render", "--out", out, "-q", timeout=300)
     assert r.returncode == 0, r.stderr
     assert "wrote" in r.stdout and str(out) in r.stdout
     y, sr = sf.read(str(out), always_2d=True)

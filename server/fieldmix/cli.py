@@ -104,25 +104,38 @@ def cmd_render(args) -> int:
 
 def cmd_demo(args) -> int:
     from .demo_audio import ensure_demo_audio
-    from .render import render, text_progress
-    from .show import load_show
 
     if not EXAMPLE_SHOW.is_file():
         raise FieldmixError(f"the example show is missing: {EXAMPLE_SHOW} (run from a clone of the repository)")
     made = ensure_demo_audio(EXAMPLE_SHOW.parent / "audio")
     if made:
         print(f"synthesised {len(made)} demo audio files in {made[0].parent}")
+    if args.render:
+        return _demo_render(args)
+    from .live.daemon import serve
+
+    opts = _serve_options(args, EXAMPLE_SHOW)
+    opts.virtual = args.device is None
+    if not args.still:
+        opts.play, opts.play_loop = EXAMPLE_SCRIPT, True
+    return serve(opts, demo=True)
+
+
+def _demo_render(args) -> int:
+    from .render import render, text_progress
+    from .show import load_show
+
     show = load_show(EXAMPLE_SHOW)
     events = _load_events(show, str(EXAMPLE_SCRIPT))
     out = Path(args.out)
     result = render(show, out, events, blocksize=256, progress=None if args.quiet else text_progress())
     _print_render(result, show, events)
-    print(f"\nlisten on {show.layout.n_channels} speakers laid out as {show.layout.name}, or look at it with:")
     lay_path = Path(show.layout.path)
     try:
         lay_path = lay_path.resolve().relative_to(Path.cwd().resolve())
     except ValueError:
         pass
+    print(f"\nlisten on {show.layout.n_channels} speakers laid out as {show.layout.name}, or look at it with:")
     print(f"  fieldmix layout check {lay_path} --plot layout.svg")
     return 0
 
@@ -206,9 +219,15 @@ def build_parser() -> argparse.ArgumentParser:
     dev = sub.add_parser("devices", help="list audio host APIs and devices")
     dev.set_defaults(func=cmd_devices)
 
-    demo = sub.add_parser("demo", help="the built-in demo: render the example show")
-    demo.add_argument("--out", default="fieldmix-demo.wav", help="output file (default fieldmix-demo.wav)")
-    demo.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    demo = sub.add_parser(
+        "demo",
+        help="the built-in demo: the example show live on a virtual audio device (--render: to a file)",
+    )
+    _add_serve_options(demo)
+    demo.add_argument("--still", action="store_true", help="do not play the demo's control script (sources stay put)")
+    demo.add_argument("--render", action="store_true", help="render the example show to a file instead, and exit")
+    demo.add_argument("--out", default="fieldmix-demo.wav", help="with --render: output file (default fieldmix-demo.wav)")
+    demo.add_argument("-q", "--quiet", action="store_true", help="with --render: no progress bar")
     demo.set_defaults(func=cmd_demo)
     return p
 

@@ -46,7 +46,8 @@ class ServeOptions:
     state_file: Optional[Path] = None
     record: Optional[Path] = None
     watch: bool = True
-    play: Optional[Path] = None  # a control script replayed into the live server (later issue)
+    play: Optional[Path] = None  # a control script played into the live server
+    play_loop: bool = False
 
 
 def is_loopback(host: str) -> bool:
@@ -85,6 +86,7 @@ class Daemon:
         self.watcher = None
         self.store = None
         self.advertiser = None
+        self.player = None
         self._stop = asyncio.Event()
         self.exit_code = 0
 
@@ -155,6 +157,14 @@ class Daemon:
             except Exception as exc:  # DNS-SD is a convenience: never stop the show for it
                 log.warning("DNS-SD advertising is off: %s", exc)
                 self.advertiser = None
+        if self.opts.play:
+            from ..control import parse_script
+            from .player import ScriptPlayer
+
+            events = parse_script(Path(self.opts.play), self.core.state.source_ids)
+            self.player = ScriptPlayer(self.core, events, loop=self.opts.play_loop,
+                                       period=24.0 if self._is_demo else None)
+            await self.player.start()
         self._announce()
 
     def _announce(self) -> None:
@@ -168,8 +178,9 @@ class Daemon:
             f"{len(self.show.sources)} sources",
             f"  audio : {self.link.backend} device, {st.get('samplerate')} Hz, {st.get('blocksize')} frames"
             + (f", recording to {self.opts.record}" if self.opts.record else ""),
+            *([f"  script: {self.opts.play}" + (" (looping)" if self.opts.play_loop else "")] if self.opts.play else []),
             f"  page  : {url}",
-            f"  OSC   : udp and tcp (SLIP) {self.host}:{self.osc.udp_port}",
+            f"  OSC   : {self.host} udp {self.osc.udp_port}, tcp (SLIP) {self.osc.tcp_port}",
         ]
         if self.generated_token:
             lines.append("  token : generated for this run (control from beyond this machine needs it)")
@@ -212,6 +223,7 @@ class Daemon:
         return self.exit_code
 
     async def shutdown(self) -> None:
+        log.info("stopping: fading out, saving the state")
         if self.link is not None:
             try:
                 self.link.fade_out_and_stop(timeout=0.5, fade_ms=150.0)
@@ -222,7 +234,7 @@ class Daemon:
                 self.store.save_now()
             except Exception:
                 log.exception("could not save the state")
-        for part in (self.advertiser, self.watcher, self.web, self.osc):
+        for part in (self.player, self.advertiser, self.watcher, self.web, self.osc):
             if part is not None:
                 try:
                     await part.stop()
