@@ -102,3 +102,17 @@ def test_azimuth_keeps_distance_and_position_keeps_height(show):
     z = st.sources[0].position[2]
     st.apply_all(_cmds(st, "/source/buoy/position", 1.0, 2.0))
     assert st.sources[0].position.tolist() == pytest.approx([1.0, 2.0, z])
+
+
+def test_scalar_and_vector_conversions_agree():
+    """The control path's scalar conversions equal the vectorised ones (one convention)."""
+    from fieldmix import geometry
+
+    rng = np.random.default_rng(2)
+    for az, el, d in zip(rng.uniform(-180, 180, 200), rng.uniform(-90, 90, 200), rng.uniform(0, 50, 200)):
+        v = geometry.sph_to_cart(az, el, d)
+        s = geometry.sph_to_xyz(az, el, d)
+        assert np.allclose(v, s, atol=1e-12)
+        a1 = [float(t) for t in geometry.cart_to_sph(v)]
+        a2 = geometry.xyz_to_sph(*s)
+        assert np.allclose(a1, a2, atol=1e-9)

@@ -8,6 +8,8 @@ All functions are vectorised: they take arrays of shape (..., 3) or (...,).
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 
@@ -77,3 +79,22 @@ def speed_of_sound(temperature_c: float = 20.0) -> float:
     Handbook value (343.2 m/s at 20 C), see docs/layouts.md.
     """
     return 331.3 * float(np.sqrt(1.0 + temperature_c / 273.15))
+
+
+# Scalar versions for the control path (one source at a time): plain math, no numpy
+# call overhead (a numpy round trip costs tens of microseconds per message here).
+def sph_to_xyz(azimuth_deg: float, elevation_deg: float, distance: float) -> tuple[float, float, float]:
+    az = math.radians(azimuth_deg)
+    el = math.radians(elevation_deg)
+    ce = math.cos(el) * distance
+    return (-math.sin(az) * ce, math.cos(az) * ce, math.sin(el) * distance)
+
+
+def xyz_to_sph(x: float, y: float, z: float) -> tuple[float, float, float]:
+    horiz = math.hypot(x, y)
+    dist = math.hypot(horiz, z)
+    az = math.degrees(math.atan2(-x, y))
+    if az <= -180.0:
+        az += 360.0
+    el = math.degrees(math.atan2(z, horiz))
+    return az, el, dist

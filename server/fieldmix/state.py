@@ -44,8 +44,8 @@ class SourceRuntime:
 
     @property
     def spherical(self) -> tuple[float, float, float]:
-        az, el, d = geometry.cart_to_sph(self.position)
-        return float(az), float(el), float(d)
+        p = self.position
+        return geometry.xyz_to_sph(float(p[0]), float(p[1]), float(p[2]))
 
     def to_dict(self) -> dict:
         az, el, d = self.spherical
@@ -56,7 +56,7 @@ class SourceRuntime:
             "azimuth": round(az, 6),
             "elevation": round(el, 6),
             "distance": round(d, 6),
-            "position": [round(float(v), 6) for v in self.position],
+            "position": [round(float(v), 6) for v in self.position.tolist()],
             "gain_db": self.gain_db,
             "mute": self.mute,
             "spread": self.spread,
@@ -147,7 +147,7 @@ class ShowState:
                 el = v[0]
             else:
                 d = v[0]
-            src.position = geometry.sph_to_cart(az, el, d)
+            src.position = np.array(geometry.sph_to_xyz(az, el, d), dtype=np.float64)
         elif cmd.param == "position":
             z = v[2] if len(v) > 2 else src.position[2]
             src.position = np.array([v[0], v[1], z], dtype=np.float64)
@@ -205,19 +205,17 @@ class ShowState:
         """The engine's target: (n_sources, n_speakers [+1 sub bus]) float32."""
         lay = self._layout
         pan = self.pan_matrix()
-        src_gain = np.array(
-            [0.0 if s.mute else float(geometry.db_to_gain(s.gain_db)) for s in self.sources],
-            dtype=np.float64,
-        )
-        master = 0.0 if self.master_mute else float(geometry.db_to_gain(self.master_gain_db))
-        trims = np.array(
-            [0.0 if spk.sub else float(geometry.db_to_gain(spk.trim_db)) for spk in lay.speakers],
-            dtype=np.float64,
-        )
+
+        def lin(db: float) -> float:  # plain floats: numpy scalars cost microseconds each
+            return 10.0 ** (db / 20.0)
+
+        src_gain = np.array([0.0 if s.mute else lin(s.gain_db) for s in self.sources], dtype=np.float64)
+        master = 0.0 if self.master_mute else lin(self.master_gain_db)
+        trims = np.array([0.0 if spk.sub else lin(spk.trim_db) for spk in lay.speakers], dtype=np.float64)
         g = pan * src_gain[:, None] * trims[None, :] * master
         if self.has_sub_bus:
             send = np.array(
-                [0.0 if s.sub_send_db is None else float(geometry.db_to_gain(s.sub_send_db)) for s in self.sources],
+                [0.0 if s.sub_send_db is None else lin(s.sub_send_db) for s in self.sources],
                 dtype=np.float64,
             )
             g = np.concatenate([g, (send * src_gain * master)[:, None]], axis=1)
