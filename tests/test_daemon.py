@@ -1,0 +1,200 @@
+"""The live daemon end to end on the virtual audio device: real processes, sockets, files.
+
+`fieldmix serve --virtual` runs as a subprocess; it is driven over a real UDP socket and
+read back over real HTTP. Covers: OSC changes reach the state, /ping, hot reload (edit,
+break, fix), autosave + kill -9 + restart resumes the positions, SIGTERM exits cleanly
+having saved the state.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import signal
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+from pathlib import Path
+
+import pytest
+
+from conftest import REPO, write_files, write_tone
+from fieldmix.oscwire import decode_packet, encode_message
+
+
+def _layout(az_left=30.0, az_right=-30.0):
+    return {
+        "panner": "vbap",
+        "speakers": [
+            {"id": "L", "output": 1, "azimuth": az_left, "distance": 2},
+            {"id": "R", "output": 2, "azimuth": az_right, "distance": 2},
+        ],
+    }
+
+
+@pytest.fixture
+def show_dir(tmp_path):
+    write_files(
+        tmp_path,
+        {
+            "pair.json": _layout(),
+            "show.json": {
+                "layout": "pair.json",
+                "glide_ms": 30,
+                "sources": [
+                    {"id": "tone", "input": 1, "file": "tone.wav", "azimuth": 0, "distance": 2},
+                    {"id": "hum", "input": 2, "file": "tone.wav", "azimuth": 20, "distance": 2},
+                ],
+            },
+        },
+    )
+    write_tone(tmp_path / "tone.wav", seconds=2.0)
+    return tmp_path
+
+
+class Daemon:
+    def __init__(self, show_dir: Path, *extra: str):
+        env = dict(os.environ)
+        env["PYTHONPATH"] = str(REPO / "server") + os.pathsep + env.get("PYTHONPATH", "")
+        self.state_file = show_dir / "state.json"
+        self.proc = subprocess.Popen(
+            [sys.executable, "-m", "fieldmix", "serve", str(show_dir / "show.json"), "--virtual",
+             "--osc-port", "0", "--http-port", "0", "--no-advertise", "--state", str(self.state_file), *extra],
+            env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+        )  # fmt: skip
+        self.lines: list[str] = []
+        deadline = time.monotonic() + 60
+        self.http = self.udp = None
+        while time.monotonic() < deadline and (self.http is None or self.udp is None):
+            line = self.proc.stdout.readline()
+            if not line:
+                break
+            self.lines.append(line)
+            if m := re.search(r"page\s*: http://127\.0\.0\.1:(\d+)/", line):
+                self.http = int(m.group(1))
+            if m := re.search(r"OSC\s*: 127\.0\.0\.1 udp (\d+)", line):
+                self.udp = int(m.group(1))
+        assert self.http and self.udp, "".join(self.lines)
+        self.sock = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
+        self.sock.bind(("127.0.0.1", 0))
+        self.sock.settimeout(5.0)
+
+    def send(self, address, *args):
+        self.sock.sendto(encode_message(address, args), ("127.0.0.1", self.udp))
+
+    def ping(self):
+        """A barrier: /pong comes back after every packet sent before it was handled."""
+        self.send("/ping")
+        while True:
+            data, _ = self.sock.recvfrom(65536)
+            msgs = [m for _, m in decode_packet(data)]
+            if any(m.address == "/pong" for m in msgs):
+                return
+
+    def state(self):
+        with urllib.request.urlopen(f"http://127.0.0.1:{self.http}/api/state", timeout=5) as r:
+            return json.loads(r.read())
+
+    def wait(self, pred, timeout=5.0):
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            st = self.state()
+            if pred(st):
+                return st
+            time.sleep(0.05)
+        raise AssertionError(f"condition not met; last state: {json.dumps(st)[:2000]}")
+
+    def stop(self, sig=signal.SIGTERM, timeout=10.0):
+        if self.proc.poll() is None:
+            self.proc.send_signal(sig)
+        try:
+            rc = self.proc.wait(timeout)
+        finally:
+            self.sock.close()
+            if self.proc.poll() is None:
+                self.proc.kill()
+                self.proc.wait(5)
+        return rc
+
+
+def test_osc_moves_reach_the_state_and_sigterm_saves(show_dir):
+    d = Daemon(show_dir, "--fresh")
+    try:
+        d.send("/source/1/azimuth", 45)
+        d.send("/source/{tone,hum}/gain", -6.0)
+        d.send("/source/tone/elevation", "high")  # wrong type: refused, counted
+        d.ping()
+        st = d.state()
+        assert st["sources"][0]["azimuth"] == pytest.approx(45.0)
+        assert [s["gain_db"] for s in st["sources"]] == [-6.0, -6.0]
+        assert st["status"]["messages"]["rejected"].get("bad_type", 0) >= 1
+        assert st["status"]["audio"]["state"] == "running"
+        t0 = time.monotonic()
+        rc = d.stop(signal.SIGTERM)
+        took = time.monotonic() - t0
+    finally:
+        if d.proc.poll() is None:
+            d.stop(signal.SIGKILL)
+    assert rc == 0
+    print(f"SIGTERM to exit: {took * 1000:.0f} ms")
+    saved = json.loads(d.state_file.read_text())
+    assert _saved_azimuth(saved, 0) == pytest.approx(45.0, abs=1e-6)
+    assert saved["sources"][0]["gain_db"] == pytest.approx(-6.0)
+
+
+def _saved_azimuth(saved, i):
+    """Azimuth of source i in a saved state (positions are saved as [x, y, z])."""
+    import math
+
+    x, y, z = saved["sources"][i]["position"]
+    return math.degrees(math.atan2(-x, y))
+
+
+def test_kill_9_and_restart_resumes_positions(show_dir):
+    d = Daemon(show_dir, "--fresh")
+    try:
+        d.send("/source/hum/azimuth", -70)
+        d.ping()
+        d.wait(lambda st: abs(st["sources"][1]["azimuth"] + 70) < 1e-6)
+        deadline = time.monotonic() + 5  # the autosave writes within about a second of a change
+        while time.monotonic() < deadline:
+            if d.state_file.exists() and abs(_saved_azimuth(json.loads(d.state_file.read_text()), 1) + 70) < 1e-6:
+                break
+            time.sleep(0.1)
+    finally:
+        d.stop(signal.SIGKILL)
+    d2 = Daemon(show_dir)  # no --fresh: resume
+    try:
+        st = d2.state()
+        assert st["sources"][1]["azimuth"] == pytest.approx(-70.0, abs=1e-6)
+        assert st["sources"][0]["azimuth"] == pytest.approx(0.0, abs=1e-6)
+    finally:
+        assert d2.stop() == 0
+    d3 = Daemon(show_dir, "--fresh")  # --fresh: from the show file
+    try:
+        assert d3.state()["sources"][1]["azimuth"] == pytest.approx(20.0, abs=1e-6)
+    finally:
+        d3.stop()
+
+
+def test_hot_reload_edit_break_fix(show_dir):
+    d = Daemon(show_dir, "--fresh")
+    lay = show_dir / "pair.json"
+    try:
+        assert [s["azimuth"] for s in d.state()["layout"]["speakers"]] == [30.0, -30.0]
+        lay.write_text(json.dumps(_layout(45.0, -45.0)))
+        d.wait(lambda st: [s["azimuth"] for s in st["layout"]["speakers"]] == [45.0, -45.0])
+        broken = _layout(45.0, -45.0)
+        broken["speakers"][1]["azimuth"] = "left"
+        lay.write_text(json.dumps(broken))
+        st = d.wait(lambda st: st["status"]["layout_error"])
+        assert "speakers[1].azimuth" in st["status"]["layout_error"]
+        assert [s["azimuth"] for s in st["layout"]["speakers"]] == [45.0, -45.0]  # the old one plays on
+        assert st["status"]["audio"]["state"] == "running"
+        lay.write_text(json.dumps(_layout(60.0, -60.0)))
+        st = d.wait(lambda st: not st["status"]["layout_error"] and st["layout"]["speakers"][0]["azimuth"] == 60.0)
+    finally:
+        assert d.stop() == 0
