@@ -118,6 +118,7 @@ class Daemon:
             blocksize=self.opts.blocksize,
             record=str(self.opts.record) if self.opts.record else None,
             inputs="files" if (backend == "virtual" or self._is_demo) else "device",
+            meter_ms=40.0,  # 25 meter frames a second for the page
         )
         self.core.link = self.link
         self.link.start(wait=True)
