@@ -11,6 +11,7 @@ from fieldmix import geometry
 from fieldmix.errors import ConfigError
 from fieldmix.model import Layout, LayoutOptions, Speaker
 from fieldmix.panning import PanningContext, gerzon_vectors, speaker_unit_vectors
+from fieldmix.panning.vbap import _SMALL, GRID
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -234,6 +235,141 @@ def test_3d_raised_ring_works_with_virtual_poles():
     g = ctx.gains(at(az, el), np.zeros(az.size), "vbap")
     np.testing.assert_allclose(np.sum(g * g, axis=1), 1.0, atol=1e-12)
     np.testing.assert_allclose(g[np.flatnonzero((az == 0) & (el == 90))[0]], [6 ** -0.5] * 6, atol=1e-12)
+
+
+# ----------------------------------------------------------------------------- 3-D face lookup
+
+
+def fibonacci_dome(n=64):
+    """n speakers spread evenly (Fibonacci lattice) over the upper half sphere, the
+    first quarter on an ear-level ring (the generated dome of benchmarks/panning.py)."""
+    k = np.arange(n)
+    el = np.degrees(np.arcsin((k + 0.5) / n * 0.98))
+    el[: n // 4] = 0.0
+    az = geometry.wrap_deg(np.degrees(k * np.pi * (3.0 - np.sqrt(5.0))))
+    return make_layout(list(zip(az, el)), name="fibonacci-dome-64")
+
+
+def dome_450_file():
+    from fieldmix.layout import load_layout
+    return load_layout(Path(__file__).resolve().parents[1] / "configs" / "layouts" / "dome-4-5-0.json")
+
+
+def search_every_triangle(mesh, p):
+    """Reference 3-D VBAP over every triangle (Pulkki 1997: the active triplet is the one
+    whose gains p^T L^-1 are all >= 0, taken here as the largest smallest gain; L^-1 from
+    numpy.linalg.inv), then the fieldmix virtual-speaker rule of docs/panning.md."""
+    inv = np.linalg.inv(mesh.vectors[mesh.triangles])
+    all_g = np.einsum("dj,tjk->dtk", p, inv)
+    best = np.argmax(all_g.min(axis=2), axis=1)
+    g = np.clip(all_g[np.arange(len(p)), best], 0.0, None)
+    norm = np.linalg.norm(g, axis=1, keepdims=True)
+    g = np.divide(g, norm, out=np.zeros_like(g), where=norm > 0)
+    k, kv = mesh.n_real, mesh.vectors.shape[0]
+    power = np.zeros((len(p), kv))
+    np.put_along_axis(power, mesh.triangles[best], g * g, axis=1)
+    real = np.sqrt(power[:, :k] + power[:, k:] @ mesh.share)
+    norm = np.linalg.norm(real, axis=1, keepdims=True)
+    return best, all_g, np.divide(real, norm, out=np.zeros_like(real), where=norm > 0)
+
+
+def hard_directions(mesh, rng):
+    """Random directions over the whole sphere, plus points on every triangle edge, every
+    speaker (virtual ones too), the poles and axes, cube-face seams and the cell grid."""
+    p = [rng.normal(size=(20000, 3))]
+    tri = mesh.vectors[mesh.triangles]
+    for a, b in ((0, 1), (1, 2), (2, 0)):
+        t = rng.uniform(0.0, 1.0, (tri.shape[0], 12, 1))
+        t[:, 0] = 0.5
+        p.append((t * tri[:, None, a] + (1.0 - t) * tri[:, None, b]).reshape(-1, 3))
+    p.append(mesh.vectors)
+    p.append(np.vstack([np.eye(3), -np.eye(3)]))
+    s = np.array([-1.0, 1.0])
+    p.append(np.array([[x, y, z] for x in s for y in s for z in (0.0, *s)]))  # seams, cube corners
+    grid = np.linspace(-1.0, 1.0, 2 * GRID + 1)  # the lookup's cell edges and centres
+    u, v = np.meshgrid(grid, grid)
+    for axis in range(3):
+        q = np.zeros((u.size, 3))
+        q[:, axis] = 1.0
+        q[:, [i for i in range(3) if i != axis]] = np.stack([u.ravel(), v.ravel()], axis=1)
+        p += [q, -q]
+    p = np.vstack(p)
+    return p / np.linalg.norm(p, axis=1, keepdims=True)
+
+
+@pytest.mark.parametrize("make", [dome_450_file, fibonacci_dome], ids=["dome-4-5-0", "fibonacci-64"])
+def test_3d_face_lookup_gives_the_gains_of_the_search_over_every_triangle(make):
+    from fieldmix.panning import vbap3d_gains, vbap3d_raw
+    mesh = PanningContext(make()).vbap_mesh()
+    assert mesh.lookup is not None
+    p = hard_directions(mesh, np.random.default_rng(11))
+    best_ref, all_g, ref = search_every_triangle(mesh, p)
+    fast = vbap3d_gains(mesh, p)
+    np.testing.assert_allclose(fast, ref, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(vbap3d_gains(mesh, p, exhaustive=True), ref, rtol=0, atol=1e-12)
+    # the same triangle wherever the choice is clear (not on an edge or at a corner)
+    best, raw = vbap3d_raw(mesh, p)
+    low = np.sort(all_g.min(axis=2), axis=1)
+    clear = low[:, -1] - low[:, -2] > 1e-9
+    assert np.count_nonzero(clear) > 20000 * 0.95
+    np.testing.assert_array_equal(best[clear], best_ref[clear])
+    # also for small batches (below _SMALL directions the full search is used)
+    np.testing.assert_allclose(vbap3d_gains(mesh, p[:7]), ref[:7], rtol=0, atol=1e-12)
+
+
+def test_3d_face_lookup_finds_the_triangle_among_its_candidates_almost_always():
+    # the lookup must do its job (the full-search fallback alone would also give the
+    # right gains): the containing triangle is among the cell's candidates
+    from fieldmix.panning.vbap import _cells
+    mesh = PanningContext(fibonacci_dome()).vbap_mesh()
+    rng = np.random.default_rng(5)
+    p = rng.normal(size=(20000, 3))
+    p /= np.linalg.norm(p, axis=1, keepdims=True)
+    best_ref, _, _ = search_every_triangle(mesh, p)
+    cell, ok = _cells(mesh.lookup, np.ascontiguousarray(p.T))
+    assert np.all(ok)
+    found = np.any(mesh.lookup.cand[cell] == best_ref[:, None], axis=1) & ~mesh.lookup.overflow[cell]
+    assert np.mean(found) > 0.99
+    assert np.mean(mesh.lookup.first_id[cell] == best_ref) > 0.85
+    assert mesh.lookup.cand.shape[1] <= 8
+
+
+def test_3d_face_lookup_keeps_zero_and_tiny_directions_like_the_full_search():
+    from fieldmix.panning import vbap3d_gains
+    mesh = PanningContext(dome_450_file()).vbap_mesh()
+    rng = np.random.default_rng(2)
+    p = rng.normal(size=(_SMALL + 100, 3))  # enough directions for the lookup to be used
+    p[:50] /= np.linalg.norm(p[:50], axis=1, keepdims=True)
+    p[50:60] *= 1e-140  # gains are scale-free: same triangle, same gains
+    p[60] = 0.0  # no direction: a zero row, never NaN
+    g = vbap3d_gains(mesh, p)
+    assert np.all(np.isfinite(g))
+    np.testing.assert_array_equal(g[60], 0.0)
+    np.testing.assert_allclose(np.sum(np.delete(g, 60, axis=0) ** 2, axis=1), 1.0, atol=1e-12)
+    np.testing.assert_allclose(g, vbap3d_gains(mesh, p, exhaustive=True), rtol=0, atol=1e-12)
+
+
+def test_3d_spread_gains_with_the_lookup_equal_mdap_over_every_triangle():
+    # MDAP (Pulkki, IEEE WASPAA 1999): weighted sum of the point gains of the cone's
+    # directions, renormalised; point gains from the reference search above
+    from fieldmix.panning import cone_directions
+    layout = fibonacci_dome()
+    ctx = PanningContext(layout)
+    mesh = ctx.vbap_mesh()
+    rng = np.random.default_rng(9)
+    az = rng.uniform(-180, 180, 40)
+    el = np.degrees(np.arcsin(rng.uniform(-1.0, 1.0, 40)))
+    pos = at(az, el, 4.0)
+    spread = rng.uniform(5.0, 250.0, 40)
+    g = ctx.gains(pos, spread, "vbap")
+    level = np.linalg.norm(g, axis=1)  # every source 4 m away: one distance gain for all
+    np.testing.assert_allclose(level, level[0], rtol=1e-12)
+    g = g / level[:, None]
+    cd, w = cone_directions(geometry.unit(pos), spread)
+    _, _, pg = search_every_triangle(mesh, cd.reshape(-1, 3))
+    ref = np.einsum("sn,snk->sk", w, pg.reshape(40, cd.shape[1], -1))
+    ref /= np.linalg.norm(ref, axis=1, keepdims=True)
+    np.testing.assert_allclose(g, ref, rtol=0, atol=1e-12)
 
 
 # ----------------------------------------------------------------------------- errors

@@ -68,7 +68,11 @@ def tangent_basis(c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     # re-orthonormalise (the formula loses precision close to the nadir)
     t1 -= np.sum(t1 * c, axis=1, keepdims=True) * c
     t1 /= np.linalg.norm(t1, axis=1, keepdims=True)
-    t2 = np.cross(c, t1)
+    # t2 = c x t1, written out (np.cross is slow for short arrays; same products)
+    t2 = np.empty_like(t1)
+    t2[:, 0] = c[:, 1] * t1[:, 2] - c[:, 2] * t1[:, 1]
+    t2[:, 1] = c[:, 2] * t1[:, 0] - c[:, 0] * t1[:, 2]
+    t2[:, 2] = c[:, 0] * t1[:, 1] - c[:, 1] * t1[:, 0]
     return t1, t2
 
 
@@ -85,12 +89,22 @@ def cone_directions(centres: np.ndarray, spread_deg: np.ndarray, rings: int = RI
     theta = h[:, None] * r[None, :]  # (S, R)
     phase = 2.0 * np.pi * (np.arange(per_ring)[None, :] + 0.5 * (r[:, None] % 2)) / per_ring  # (R, M)
     t1, t2 = tangent_basis(c)
-    # ring directions: cos(theta) c + sin(theta) (cos(phi) t1 + sin(phi) t2)
-    tang = (np.cos(phase)[None, :, :, None] * t1[:, None, None, :]
-            + np.sin(phase)[None, :, :, None] * t2[:, None, None, :])  # (S, R, M, 3)
-    ring_dirs = (np.cos(theta)[:, :, None, None] * c[:, None, None, :]
-                 + np.sin(theta)[:, :, None, None] * tang)
-    dirs = np.concatenate([c[:, None, :], ring_dirs.reshape(s, rings * per_ring, 3)], axis=1)
+    # ring directions: cos(theta) c + sin(theta) (cos(phi) t1 + sin(phi) t2), one
+    # coordinate at a time on (S, R * M) arrays (the same products and sums as a
+    # broadcast over (S, R, M, 3), without the length-3 innermost axis)
+    cos_phi = np.cos(phase).ravel()[None, :]
+    sin_phi = np.sin(phase).ravel()[None, :]
+    cos_t = np.repeat(np.cos(theta), per_ring, axis=1)  # (S, R * M)
+    sin_t = np.repeat(np.sin(theta), per_ring, axis=1)
+    dirs = np.empty((s, 1 + rings * per_ring, 3))
+    dirs[:, 0, :] = c
+    for x in range(3):
+        tang = cos_phi * t1[:, x, None]
+        tang += sin_phi * t2[:, x, None]
+        tang *= sin_t
+        ring = cos_t * c[:, x, None]
+        ring += tang
+        dirs[:, 1:, x] = ring
     # solid-angle weights, written with products of sines (no 1 - cos cancellation)
     w_centre = 2.0 * np.sin(h / 4.0) ** 2  # 1 - cos(h/2)
     w_ring = 2.0 * np.sin(theta) * np.sin(h / 2.0)[:, None] / per_ring  # bands theta_r +- h/2
