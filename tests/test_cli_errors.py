@@ -6,7 +6,6 @@ status 2, print no traceback and leave no output file behind.
 
 from __future__ import annotations
 
-import json
 
 import pytest
 

@@ -6,7 +6,6 @@ import numpy as np
 import pytest
 
 from fieldmix import geometry
-from fieldmix.model import Layout, LayoutOptions, Speaker
 from fieldmix.panning import (
     PanningContext,
     cone_directions,
@@ -18,19 +17,12 @@ from fieldmix.panning import (
 )
 
 
-def make_layout(specs, panner="vbap", name="test-layout", **options) -> Layout:
-    """Layout from (azimuth, elevation[, distance]) tuples (distance 2 m by default)."""
-    speakers = []
-    for i, spec in enumerate(specs):
-        az, el, dist = (tuple(spec) + (2.0,))[:3]
-        pos = geometry.sph_to_cart(az, el, dist)
-        speakers.append(Speaker(index=i, id=f"S{i + 1}", output=i + 1, position=tuple(float(v) for v in pos),
-                                azimuth=float(az), elevation=float(el), distance=float(dist)))
-    return Layout(name=name, speakers=tuple(speakers), panner=panner, options=LayoutOptions(**options))
+from panning_helpers import at
+from panning_helpers import make_layout as _make_layout
 
 
-def at(az, el=0.0, dist=2.0) -> np.ndarray:
-    return np.atleast_2d(geometry.sph_to_cart(az, el, dist))
+def make_layout(specs, panner="vbap", **kw):
+    return _make_layout(specs, panner=panner, **kw)
 
 
 RING8 = [(a, 0) for a in range(0, 360, 45)]

@@ -9,7 +9,6 @@ import pytest
 
 from fieldmix import geometry
 from fieldmix.errors import ConfigError
-from fieldmix.model import Layout, LayoutOptions, Speaker
 from fieldmix.panning import PanningContext, gerzon_vectors, speaker_unit_vectors
 from fieldmix.panning.vbap import _SMALL, GRID
 
@@ -17,24 +16,12 @@ from fieldmix.panning.vbap import _SMALL, GRID
 # ----------------------------------------------------------------------------- helpers
 
 
-def make_layout(specs, panner="vbap", name="test-layout", path=None, **options) -> Layout:
-    """Layout from (azimuth, elevation[, distance]) tuples or dicts (id, sub, weight)."""
-    speakers = []
-    for i, spec in enumerate(specs):
-        if not isinstance(spec, dict):
-            spec = dict(zip(("az", "el", "dist"), spec))
-        az, el, dist = spec["az"], spec.get("el", 0.0), spec.get("dist", 2.0)
-        pos = geometry.sph_to_cart(az, el, dist)
-        speakers.append(Speaker(index=i, id=spec.get("id", f"S{i + 1}"), output=i + 1,
-                                position=tuple(float(v) for v in pos), azimuth=float(az),
-                                elevation=float(el), distance=float(dist),
-                                sub=spec.get("sub", False), weight=spec.get("weight", 1.0)))
-    return Layout(name=name, speakers=tuple(speakers), panner=panner,
-                  options=LayoutOptions(**options), path=path)
+from panning_helpers import at
+from panning_helpers import make_layout as _make_layout
 
 
-def at(az, el=0.0, dist=2.0) -> np.ndarray:
-    return np.atleast_2d(geometry.sph_to_cart(az, el, dist))
+def make_layout(specs, panner="vbap", **kw):
+    return _make_layout(specs, panner=panner, **kw)
 
 
 def sphere_grid(step=2.0):

@@ -122,7 +122,6 @@ def render(
     lay = state.layout
     n_ch = lay.n_channels
     col_of_speaker = np.array([spk.output - 1 for spk in lay.speakers], dtype=np.intp)
-    n_in = len(state.sources)
 
     out_path = Path(out_path)
     fmt = "WAV" if total * n_ch * 4 < 2**32 - 2**20 else "RF64"

@@ -15,13 +15,12 @@ per-sample ramps, like positions do: nothing can step.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Iterable, Optional
 
 import numpy as np
 
 from . import geometry
-from .errors import ConfigError
 from .model import Layout, Show, SourceSpec
 from .panning import PanningContext
 
