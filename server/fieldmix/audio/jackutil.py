@@ -234,6 +234,16 @@ class JackServer:
     def client_ports(self, client: str) -> list[str]:
         return [p for p in self.ports() if p.split(":", 1)[0] == client]
 
+    def io_ports(self, client: str) -> tuple[list[str], list[str]]:
+        """(input ports, output ports) of a PortAudio client, in channel order (``in_N`` / ``out_N``)."""
+
+        def num(p: str) -> int:
+            tail = p.rsplit("_", 1)[-1]
+            return int(tail) if tail.isdigit() else 0
+
+        ports = self.client_ports(client)
+        return (sorted((p for p in ports if ":in_" in p), key=num), sorted((p for p in ports if ":out_" in p), key=num))
+
     def wait_for_ports(self, client: str, count: int, timeout: float = 10.0) -> list[str]:
         deadline = time.monotonic() + timeout
         while True:
@@ -289,12 +299,32 @@ class Probe:
 
     def record(self, seconds: float, path: Path, timeout: float = 10.0) -> Path:
         """Record ``seconds`` of every probe input into ``path`` (float WAV)."""
+        self.start_record(seconds, path)
+        return self.finish_record(timeout)["path"]
+
+    def start_record(self, seconds: float, path: Path) -> None:
+        """Begin a recording and return at once (the caller acts meanwhile); then :meth:`finish_record`."""
+        self._rec_seconds = float(seconds)
+        self._rec_path = Path(path)
         self.proc.stdin.write(f"rec {seconds} {path}\n")
         self.proc.stdin.flush()
-        line = self._readline(timeout + seconds)
-        if not line.startswith("ok"):
+
+    def finish_record(self, timeout: float = 10.0) -> dict:
+        """Wait for the recording begun by :meth:`start_record`.
+
+        Returns ``path``; ``t0``, the ``time.monotonic()`` (CLOCK_MONOTONIC, shared by every
+        process on the machine) at which the callback holding the first recorded frame began;
+        ``flagged``, callbacks in the recording with a PortAudio status flag; ``late_ms``, how
+        far the last callback ran behind the clock implied by ``t0`` and the frames recorded
+        (a callback JACK skipped shows as a block or more)."""
+        line = self._readline(timeout + getattr(self, "_rec_seconds", 0.0))
+        parts = line.split()
+        if not parts or parts[0] != "ok":
             raise JackError(f"probe recording failed: {line!r} {self._stderr()}")
-        return Path(path)
+        info = {"path": getattr(self, "_rec_path", None) or Path(parts[1]), "t0": None, "flagged": None, "late_ms": None}
+        if len(parts) >= 5:
+            info.update(t0=float(parts[-3]), flagged=int(parts[-2]), late_ms=float(parts[-1]))
+        return info
 
     def close(self, timeout: float = 5.0) -> None:
         if self.proc.poll() is None:
@@ -332,10 +362,11 @@ def _probe_main(args) -> int:
     dev = match_device(query_in_this_process(sd)["devices"], args.device)
     sr = args.samplerate
     w = 2 * np.pi * args.freq / sr
-    state = {"phase": 0, "want": 0, "got": 0, "buf": None}
+    state = {"phase": 0, "want": 0, "got": 0, "buf": None, "t0": 0.0, "flagged": 0, "late": 0.0}
     done = threading.Event()
 
     def cb(indata, outdata, frames, t, status):
+        now = time.monotonic()
         n = np.arange(state["phase"], state["phase"] + frames)
         outdata[:, 0] = args.amp * np.sin(w * n)
         if outdata.shape[1] > 1:
@@ -343,6 +374,12 @@ def _probe_main(args) -> int:
         state["phase"] += frames
         want, got = state["want"], state["got"]
         if got < want:
+            if got == 0:
+                state["t0"], state["flagged"], state["late"] = now, 0, 0.0
+            else:  # behind the clock that t0 and the frames so far imply: skipped callbacks
+                state["late"] = max(state["late"], now - state["t0"] - got / sr)
+            if status:
+                state["flagged"] += 1
             k = min(frames, want - got)
             state["buf"][got : got + k] = indata[:k]
             state["got"] = got + k
@@ -375,7 +412,7 @@ def _probe_main(args) -> int:
                 print("error timeout", flush=True)
                 continue
             sf.write(parts[2], state["buf"], sr, subtype="FLOAT")
-            print(f"ok {parts[2]}", flush=True)
+            print(f"ok {parts[2]} {state['t0']:.6f} {state['flagged']} {1000.0 * state['late']:.3f}", flush=True)
         else:
             print(f"error unknown command {line.strip()!r}", flush=True)
     sys.stdout.flush()

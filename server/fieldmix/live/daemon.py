@@ -245,6 +245,7 @@ class Daemon:
 
 def serve(opts: ServeOptions, demo: bool = False) -> int:
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(message)s", datefmt="%H:%M:%S")
+    logging.getLogger("watchfiles").setLevel(logging.WARNING)
     d = Daemon(opts)
     d.demo = demo
     return asyncio.run(d.run())

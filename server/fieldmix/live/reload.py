@@ -408,7 +408,9 @@ class LayoutWatcher:
         try:
             async for changes in awatch(
                 folder,
-                watch_filter=None,
+                # only the watched file: other files in the folder (a log written there, say)
+                # must not wake us, let alone make watchfiles log every change
+                watch_filter=lambda _change, p: self._path is not None and Path(p).name == self._path.name,
                 debounce=200,
                 step=10,
                 stop_event=stop,
