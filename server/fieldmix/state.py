@@ -94,6 +94,7 @@ class ShowState:
         self.version = 0
         self._pan: Optional[np.ndarray] = None  # cached pan matrix; rows in _dirty are stale
         self._dirty: set[int] = set()
+        self._ids: Optional[tuple[str, ...]] = None
         self._layout: Layout
         self._ctx: PanningContext
         self.set_layout(layout or show.layout)
@@ -122,7 +123,10 @@ class ShowState:
 
     @property
     def source_ids(self) -> tuple[str, ...]:
-        return tuple(s.spec.id for s in self.sources)
+        ids = self._ids
+        if ids is None or len(ids) != len(self.sources):  # ids never change; sources are fixed by the show
+            ids = self._ids = tuple(s.spec.id for s in self.sources)
+        return ids
 
     # --------------------------------------------------------------- commands
     def apply(self, cmd) -> None:
