@@ -58,6 +58,7 @@ from ..oscwire import (
     slip_encode,
 )
 from .core import LiveCore, RateLimitedLog
+from .ratelimit import TokenBucket
 
 __all__ = ["OscServer", "SERVER_ADDRESSES", "ECHO_IGNORED", "SOURCE_OUTPUT", "MASTER_OUTPUT", "STATUS_KEYS"]
 
@@ -100,25 +101,6 @@ _ERROR_QUEUE = 16  # /error reports held per subscriber between two flushes
 
 
 # --------------------------------------------------------------------------- helpers
-
-
-class _Bucket:
-    """Token bucket: ``take()`` is true at most ``rate`` times a second (bursts of ``burst``)."""
-
-    def __init__(self, rate: float, burst: float):
-        self.rate = float(rate)
-        self.burst = float(burst)
-        self.tokens = float(burst)
-        self.t = time.monotonic()
-
-    def take(self) -> bool:
-        now = time.monotonic()
-        self.tokens = min(self.burst, self.tokens + (now - self.t) * self.rate)
-        self.t = now
-        if self.tokens >= 1.0:
-            self.tokens -= 1.0
-            return True
-        return False
 
 
 class _RateMeter:
@@ -529,8 +511,8 @@ class OscServer:
         self.tcp_closed_junk = 0
         self.subscribers_dropped: Counter = Counter()
         self._rate = _RateMeter()
-        self._err_bucket = _Bucket(error_reports_per_second, max(1.0, error_reports_per_second))
-        self._status_bucket = _Bucket(status_replies_per_second, max(1.0, status_replies_per_second))
+        self._err_bucket = TokenBucket(error_reports_per_second, max(1.0, error_reports_per_second))
+        self._status_bucket = TokenBucket(status_replies_per_second, max(1.0, status_replies_per_second))
         self._ratelog = RateLimitedLog(log)
         self._trace_next = 0.0
         self.ignored = 0

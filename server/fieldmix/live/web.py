@@ -50,6 +50,7 @@ from .. import __version__ as FIELDMIX_VERSION
 from ..control import parse_message
 from ..errors import ControlError, FieldmixError
 from .core import LiveCore, RateLimitedLog
+from .ratelimit import TokenBucket
 
 log = logging.getLogger("fieldmix.web")
 
@@ -221,24 +222,6 @@ class _Out:
                 log.error("not sent (cannot be serialised): %s: %s", self.msg.get("type"), exc)
                 self._text = ""
         return self._text or None
-
-
-class TokenBucket:
-    """``rate`` messages a second on average, ``burst`` at once."""
-
-    __slots__ = ("rate", "burst", "tokens", "t")
-
-    def __init__(self, rate: float, burst: float, now: float):
-        self.rate, self.burst = float(rate), float(burst)
-        self.tokens, self.t = float(burst), now
-
-    def take(self, now: float) -> bool:
-        self.tokens = min(self.burst, self.tokens + (now - self.t) * self.rate)
-        self.t = now
-        if self.tokens >= 1.0:
-            self.tokens -= 1.0
-            return True
-        return False
 
 
 class _Client:
