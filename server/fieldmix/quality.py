@@ -220,6 +220,8 @@ def plot(layout: Layout, rep: QualityReport, path) -> None:
         ax.annotate(f"{s.id}\n{s.output}", (np.radians(s.azimuth), rr), textcoords="offset points",
                     xytext=(0, -24), ha="center", fontsize=8)
     ax.plot(0, 0, marker="*", ms=12, color="#e76f51")
+    ticks = np.arange(0, 360, 45)
+    ax.set_thetagrids(ticks, [f"{(t + 180) % 360 - 180:+.0f}" if t not in (0, 180) else f"{t}" for t in ticks])
     ax.set_ylim(0, rmax + 0.4)
     ax.set_yticks([])
     ax.set_title(
