@@ -175,10 +175,10 @@ def test_at_most_one_write_per_interval_under_a_stream(show_dir):
             await asyncio.sleep(0.005)
         elapsed = time.monotonic() - t0
         deadline = time.monotonic() + WAIT
-        while store.dirty and time.monotonic() < deadline:  # the last change gets its write too
+        while store.pending and time.monotonic() < deadline:  # the last change gets its write too
             await asyncio.sleep(0.05)
         autosaves = list(store.write_times)
-        assert not store.dirty
+        assert not store.pending
         gaps = np.diff(autosaves)
         print(f"\n{k} changes in {elapsed:.2f} s -> {len(autosaves)} autosaves, gaps {np.round(gaps, 3).tolist()} s")
         assert len(autosaves) >= 2  # it saves while the stream goes on, not only at the end

@@ -269,6 +269,11 @@ class StateStore:
     def dirty(self) -> bool:
         return self._dirty
 
+    @property
+    def pending(self) -> bool:
+        """A change is not on disk yet: dirty, or a write of it still in flight."""
+        return self._dirty or self._inflight
+
     def save_now(self) -> bool:
         """Write the current state now (synchronously). True if it was written."""
         if self._handle is not None:
@@ -292,7 +297,9 @@ class StateStore:
             self._handle = None
         key = str(self.path.absolute())
         StateStore._active_paths[key] = max(0, StateStore._active_paths.get(key, 1) - 1)
-        ok = self.save_now() if (self._dirty or self.writes == 0) else True
+        # an autosave may still be in flight in the executor: write synchronously so that the
+        # newest state is on disk when close() returns
+        ok = self.save_now() if (self.pending or self.writes == 0) else True
         return ok
 
     def status(self) -> dict:
