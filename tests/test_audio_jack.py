@@ -303,3 +303,32 @@ def test_unknown_device_lists_the_candidates(jack_server, show_state):
         lk.start()
     assert "no-such-card" in str(e.value) and "system" in str(e.value)
     assert lk.state == "stopped"
+
+
+def test_the_stream_follows_the_jack_period(jack_server, show_state):
+    """Asked for 64 frames on a 128-frame JACK server: the stream runs at the server's
+    period (no PortAudio buffering in between, so no extra period of latency), the status
+    says 128 and a warning names both sizes."""
+    lk = AudioLink(show_state, backend="device", device="system", samplerate=48000, blocksize=64,
+                   client_name=f"fmx-{os.getpid()}-p", engine_options={"fade_in_ms": 50.0}).start()  # fmt: skip
+    try:
+        _wait_frames(lk, lambda m: True, frames=4)
+        assert lk.wait_for(lambda l: any(e["event"] == "warning" for e in l.events), WAIT, 0.02), lk.events
+        st = lk.status()
+        assert st["blocksize"] == 128, st
+        warn = [e["message"] for e in lk.events if e["event"] == "warning"]
+        assert any("128 frames" in w and "64" in w for w in warn), warn
+        # callbacks are expected at the server's period, not the one asked for
+        assert st["callbacks_expected"] < 1.5 * st["callbacks_seen"] + 20, st
+    finally:
+        lk.fade_out_and_stop()
+
+
+def test_the_stream_at_the_jack_period_warns_of_nothing(jack_server, show_state):
+    lk = _start_link(show_state, f"fmx-{os.getpid()}-q")
+    try:
+        _wait_frames(lk, lambda m: True, frames=8)
+        assert lk.status()["blocksize"] == 128
+        assert not [e for e in lk.events if e["event"] == "warning"], lk.events
+    finally:
+        lk.fade_out_and_stop()

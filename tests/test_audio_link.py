@@ -514,6 +514,21 @@ def test_recorder_overflow_is_counted_not_waited_for(tmp_path):
     print(f"\n200 pushes took {pushed_in * 1e3:.2f} ms, {rec.overflow} counted as overflow")
 
 
+def test_recorder_takes_a_device_period_longer_than_its_slots(tmp_path):
+    """On JACK the stream follows the server's period, which may exceed the block size the
+    recorder's ring was built for: such a block spans slots, in order, nothing lost."""
+    from fieldmix.audio.child import Recorder
+
+    rec = Recorder(str(tmp_path / "r.wav"), 48000, 1, 64)
+    ramp = np.arange(5 * 300, dtype=np.float32).reshape(5, 300, 1) / 2000.0  # 300 = 4 slots and a bit
+    for b in ramp:
+        rec.push(b)
+    rec.close()
+    y, _ = sf.read(str(tmp_path / "r.wav"), always_2d=True, dtype="float32")
+    assert rec.overflow == 0
+    np.testing.assert_array_equal(y[:, 0], ramp.reshape(-1))
+
+
 def test_child_stops_and_segment_goes_when_the_control_process_dies(tmp_path, show_state):
     code = f"""
 import sys, time

@@ -7,6 +7,9 @@ never taken from the engine itself.
 from __future__ import annotations
 
 import math
+import os
+import subprocess
+import sys
 import tracemalloc
 
 import numpy as np
@@ -641,6 +644,37 @@ def test_engine_runs_the_kernels_asked_for(kernels, monkeypatch):
     monkeypatch.setenv("FIELDMIX_KERNELS", "fast")
     with pytest.raises(ConfigError, match="FIELDMIX_KERNELS"):
         make(3, 4)
+
+
+def test_the_numpy_path_does_not_load_numba(tmp_path):
+    """numba costs ~60 MB and ~0.5 s a process: kernels="numpy" (what the audio child picks
+    for a small show) must not import it, nor must building a state or the audio link."""
+    code = (
+        "import sys\n"
+        "from fieldmix.engine import Engine, kernels_for\n"
+        "e = Engine(4, 10, 48000, kernels=kernels_for(4, 10))\n"
+        "assert e.kernels == 'numpy', e.kernels\n"
+        "import fieldmix.audio.link, fieldmix.state, fieldmix.live.daemon\n"
+        "print('numba' in sys.modules, 'llvmlite' in sys.modules)\n"
+    )
+    env = {k: v for k, v in os.environ.items() if k != "FIELDMIX_KERNELS"}
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split() == ["False", "False"]
+
+
+def test_kernels_for_picks_numpy_for_small_mixes_only(monkeypatch):
+    from fieldmix.engine import NUMBA_MIN_CELLS, kernel_preference, kernels_for
+
+    assert kernels_for(4, 10) == "numpy"  # the demo show: 4 sources, 9 outputs + sub bus
+    assert kernels_for(32, 33) == "auto"
+    assert kernels_for(1, NUMBA_MIN_CELLS) == "auto" and kernels_for(1, NUMBA_MIN_CELLS - 1) == "numpy"
+    monkeypatch.delenv("FIELDMIX_KERNELS", raising=False)
+    assert kernel_preference("numpy") == "numpy"
+    with pytest.raises(ConfigError, match="engine.kernels"):
+        kernel_preference("fast")
+    monkeypatch.setenv("FIELDMIX_KERNELS", "numba")  # the environment overrides the argument
+    assert kernel_preference("numpy") == "numba"
 
 
 def _scenario(kind, monkeypatch):

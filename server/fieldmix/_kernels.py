@@ -52,13 +52,15 @@ def available() -> bool:
     return njit is not None
 
 
-def choose() -> str:
-    """'numba' or 'numpy', from FIELDMIX_KERNELS (numba|numpy|auto, default auto).
+def choose(want: str | None = None) -> str:
+    """'numba' or 'numpy' for ``want`` (numba|numpy|auto; None: FIELDMIX_KERNELS, default auto).
 
     Choosing numba compiles the kernels (first call in a process only); if that fails,
     auto falls back to numpy and an explicit numba raises ConfigError.
     """
-    want = os.environ.get("FIELDMIX_KERNELS", "auto").strip().lower() or "auto"
+    if want is None:
+        want = os.environ.get("FIELDMIX_KERNELS", "auto")
+    want = str(want).strip().lower() or "auto"
     if want not in ("auto", "numba", "numpy"):
         raise ConfigError("FIELDMIX_KERNELS", f"must be numba, numpy or auto, got {want!r}")
     if want == "numpy":

@@ -31,6 +31,7 @@ layer; the engine only sees G.
 from __future__ import annotations
 
 import math
+import os
 
 import numpy as np
 
@@ -128,6 +129,28 @@ class _Views:
                  "suby", "mask")
 
 
+#: Below this many matrix cells (sources x outputs) ``kernels_for`` picks the numpy
+#: path: the compiled kernels save a few microseconds a block there, while loading
+#: numba costs about 60 MB of memory and half a second per process.
+NUMBA_MIN_CELLS = 256
+
+
+def kernel_preference(kernels: str = "auto") -> str:
+    """The kernels to use: ``FIELDMIX_KERNELS`` (numba|numpy|auto) when set, else ``kernels``."""
+    env = os.environ.get("FIELDMIX_KERNELS", "").strip().lower()
+    want = env or (kernels if isinstance(kernels, str) else "")
+    want = want.strip().lower() or "auto"
+    if want not in ("auto", "numba", "numpy"):
+        where = "FIELDMIX_KERNELS" if env else "engine.kernels"
+        raise ConfigError(where, f"must be numba, numpy or auto, got {want!r}")
+    return want
+
+
+def kernels_for(n_inputs: int, n_outputs: int) -> str:
+    """A long-running process's choice for mixes of this size: ``numpy`` for small ones, else ``auto``."""
+    return "numpy" if int(n_inputs) * int(n_outputs) < NUMBA_MIN_CELLS else "auto"
+
+
 class Engine:
     """Ramped N x M matrix mixer with delays, sub bus, ceiling and meters.
 
@@ -143,7 +166,7 @@ class Engine:
     def __init__(self, n_inputs: int, n_outputs: int, samplerate: float, max_block: int = 4096,
                  glide_ms: float = 30.0, ceiling_dbfs: float = -1.0, fade_in_ms: float = 1000.0,
                  sub_outputs=(), sub_trims_db=None, crossover_hz: float = 80.0,
-                 max_delay_ms: float = 500.0):
+                 max_delay_ms: float = 500.0, kernels: str = "auto"):
         N = _int(n_inputs, "engine.n_inputs", 1, 4096)
         M = _int(n_outputs, "engine.n_outputs", 1, 4096)
         fs = _num(samplerate, "engine.samplerate", 1.0, 1.0e6)
@@ -294,9 +317,13 @@ class Engine:
             self._filt = None
 
         # ---- elementwise kernels: compiled (numba) or numpy, chosen here, compiled here ----
-        from . import _kernels  # here, not at module import: importing numba takes ~0.5 s
+        want = kernel_preference(kernels)
+        if want == "numpy":  # numba is not even imported (it costs ~60 MB and ~0.5 s)
+            self.kernels = "numpy"
+        else:
+            from . import _kernels  # here, not at module import: importing numba takes ~0.5 s
 
-        self.kernels = _kernels.choose()
+            self.kernels = _kernels.choose(want)
         self._nb = self.kernels == "numba"
         self._acc = np.zeros(max(N, M), dtype=np.float32)  # kernel scratch: sums of squares
         self._acc64 = np.zeros(Mb, dtype=np.float64)  # kernel scratch: set_target's check

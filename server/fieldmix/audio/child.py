@@ -132,19 +132,22 @@ class Recorder:
 
     def push(self, block) -> None:
         """Audio path: copy one block (frames, device channels) into the ring, or count an overflow."""
-        w = self.w
-        if w - self.r >= self.n_slots:
-            self.overflow += 1
-            return
-        slot = w % self.n_slots
-        n = block.shape[0]
-        c = min(self.channels, block.shape[1])
-        dst = self.ring[slot]
-        dst[:n, :c] = block[:, :c]
-        if c < self.channels:
-            dst[:n, c:] = 0.0
-        self.lengths[slot] = n
-        self.w = w + 1
+        size = self.ring.shape[1]
+        for k in range(0, block.shape[0], size):  # a device period longer than a slot spans slots
+            part = block[k : k + size]
+            w = self.w
+            if w - self.r >= self.n_slots:
+                self.overflow += 1
+                return
+            slot = w % self.n_slots
+            n = part.shape[0]
+            c = min(self.channels, part.shape[1])
+            dst = self.ring[slot]
+            dst[:n, :c] = part[:, :c]
+            if c < self.channels:
+                dst[:n, c:] = 0.0
+            self.lengths[slot] = n
+            self.w = w + 1
 
     def _run(self) -> None:
         try:
@@ -205,6 +208,7 @@ class AudioChild:
         self.meter_blocks = max(1, int(round(cfg.get("meter_ms", 50.0) * 1e-3 / self.period)))
         self._virtual_out = self.backend == "virtual"  # outputs go to a buffer of ours
         self.file_inputs = self.backend == "virtual" or bool(cfg.get("file_inputs"))
+        self.follow_jack_period = bool(cfg.get("follow_jack_period", True))
 
         # messages: a receiver thread takes them, the audio path takes prepared actions
         self._outbox: deque = deque()
@@ -233,6 +237,12 @@ class AudioChild:
             raise _Fatal("config", f"the engine cannot be imported: {exc}", EXIT_FATAL) from None
         self._Engine = Engine
         self.engine_options = dict(cfg.get("engine_options") or {})
+        if "kernels" not in self.engine_options:
+            # one choice for the life of this process, from the first layout's size: a
+            # small show does not load numba at all (docs/engine.md, "Kernels")
+            from ..engine import kernels_for
+
+            self.engine_options["kernels"] = kernels_for(self.n_in, int(cfg["layout"]["n_outputs"]) + 1)
         self.glide_ms = float(cfg["glide_ms"])
 
         layout = cfg["layout"]
@@ -243,6 +253,8 @@ class AudioChild:
 
         # counters and meter accumulators (preallocated)
         self.blocks = 0
+        self.frames_seen = 0  # frames of the last callback (on JACK: the server's period)
+        self._period_reported = False
         self.flagged = 0
         self.expected = 0
         self.t_first = 0.0
@@ -536,7 +548,8 @@ class AudioChild:
             self._t_first_pending = False
             self.t_first = now
         self.blocks += 1
-        self.expected = self._exp_base + int((now - self.t_first) / self.period) + 1
+        self.frames_seen = frames
+        self.expected = self._exp_base + int((now - self.t_first) * self.sr / frames) + 1
         beat = self.shm.beat
         beat[S.B_AUDIO] = now
         beat[S.B_FADED] = 1.0 if eng.faded_out else 0.0
@@ -569,7 +582,7 @@ class AudioChild:
         st[S.S_FADED_OUT] = 1 if eng.faded_out else 0
         st[S.S_N_IN] = self.n_in
         st[S.S_N_OUT] = n_out
-        st[S.S_BLOCKSIZE] = self.blocksize
+        st[S.S_BLOCKSIZE] = self.frames_seen or self.blocksize
         st[S.S_DEV_OUT] = self.dev_out
         st[S.S_DEV_IN] = self.dev_in
         if self.recorder is not None:
@@ -693,6 +706,7 @@ class AudioChild:
             "pid": os.getpid(),
             "layout_gen": self.slot.gen,
             "record": self.recorder.path if self.recorder else None,
+            "kernels": self.slot.engine.kernels,
         }
         d.update(extra)
         return d
@@ -765,12 +779,17 @@ class AudioChild:
         import numpy as np
 
         dev = self._device
+        # On JACK the server fixes the period. A fixed PortAudio blocksize there makes
+        # PortAudio's buffer processor hold one extra buffer between input and output,
+        # so the stream follows the server's period (blocksize 0) and the engine takes
+        # whatever frame count each callback brings.
+        blocksize = 0 if self.follow_jack_period and "jack" in str(dev.get("hostapi", "")).lower() else self.blocksize
         try:
             if self.file_inputs:  # the show's files are the inputs: an output-only stream
                 stream = sd.OutputStream(
                     device=dev["index"],
                     samplerate=self.sr,
-                    blocksize=self.blocksize,
+                    blocksize=blocksize,
                     channels=n_out,
                     dtype="float32",
                     callback=self._out_callback,
@@ -779,7 +798,7 @@ class AudioChild:
                 stream = sd.Stream(
                     device=(dev["index"], dev["index"]),
                     samplerate=self.sr,
-                    blocksize=self.blocksize,
+                    blocksize=blocksize,
                     channels=(self.dev_in, n_out),
                     dtype="float32",
                     callback=self._callback,
@@ -854,6 +873,12 @@ class AudioChild:
             now = time.monotonic()
             beat = self.shm.beat  # (the segment may have been replaced)
             beat[S.B_MAIN] = now  # this process is alive
+            if not self._period_reported and self.frames_seen:
+                self._period_reported = True
+                if self.frames_seen != self.blocksize:
+                    self.post(("warning", f'"{self._device["name"]}" runs at {self.frames_seen} frames a period, '
+                                          f"not the {self.blocksize} asked for: fieldmix follows the device "
+                                          "(on JACK the server sets the period: jackd -p)"))  # fmt: skip
             if self._stop_reason is not None:
                 self._stop_with_fade(lambda: time.sleep(0.005))
                 try:
