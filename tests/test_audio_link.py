@@ -607,3 +607,29 @@ def test_engine_swap_is_a_seamless_crossfade(tmp_path):
     peaks = np.abs(body[: n * 64].reshape(n, 64)).max(axis=1)
     dev_db = 20 * np.log10(peaks / np.median(peaks))
     assert np.abs(dev_db).max() < 0.2, (dev_db.min(), dev_db.max())
+
+
+def test_raise_priority_changes_only_the_calling_thread():
+    """FIELDMIX_AUDIO_PRIORITY=auto: the audio thread asks for SCHED_FIFO (else nice -10);
+    the default, "normal", changes nothing. Other threads keep their scheduling."""
+    import threading
+
+    from fieldmix.audio.child import raise_priority
+
+    got = {}
+
+    def worker(mode):
+        got[mode] = (raise_priority(mode), os.sched_getscheduler(0), os.getpriority(os.PRIO_PROCESS, threading.get_native_id()))
+
+    for mode in ("normal", "auto"):
+        t = threading.Thread(target=worker, args=(mode,))
+        t.start()
+        t.join()
+    assert got["normal"][0] == "normal" and got["normal"][1] == os.SCHED_OTHER
+    what, policy, nice = got["auto"]
+    assert what in ("fifo 70", "nice -10", "normal"), what
+    if what.startswith("fifo"):
+        assert policy == os.SCHED_FIFO
+    elif what == "nice -10":
+        assert policy == os.SCHED_OTHER and nice == -10
+    assert os.sched_getscheduler(0) == os.SCHED_OTHER  # this (the calling test's) thread is untouched

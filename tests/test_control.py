@@ -65,6 +65,8 @@ def err(address, *args, ids=IDS, **kw) -> ControlError:
         ("/source/vox/gain", (24.0,), Command("source", 0, "gain", (24.0,))),
         ("/source/vox/mute", (1,), Command("source", 0, "mute", (1.0,))),
         ("/source/vox/mute", (0.0,), Command("source", 0, "mute", (0.0,))),
+        ("/source/vox/solo", (1,), Command("source", 0, "solo", (1.0,))),
+        ("/source/vox/solo", (0,), Command("source", 0, "solo", (0.0,))),
         ("/source/vox/spread", (360,), Command("source", 0, "spread", (360.0,))),
         ("/source/vox/spread", (0.0,), Command("source", 0, "spread", (0.0,))),
         ("/master/gain", (-3,), Command("master", None, "gain", (-3.0,))),
@@ -82,7 +84,7 @@ def test_every_address(address, args, expected):
 def test_table_covers_the_documented_addresses():
     assert set(ADDRESSES) == {
         "/source/<id>/azimuth", "/source/<id>/elevation", "/source/<id>/distance",
-        "/source/<id>/position", "/source/<id>/gain", "/source/<id>/mute",
+        "/source/<id>/position", "/source/<id>/gain", "/source/<id>/mute", "/source/<id>/solo",
         "/source/<id>/spread", "/master/gain", "/master/mute",
     }
     for spec in ADDRESSES.values():
@@ -244,7 +246,7 @@ def test_match_hook_on_literal_parts():
     assert sorted(c.param for c in cmds) == ["gain", "mute"]
     # /source/vox/* with 1: position needs 2 args and is left out; the others apply
     cmds = parse_message("/source/vox/*", (1,), IDS, match=_glob)
-    assert sorted(c.param for c in cmds) == ["azimuth", "distance", "elevation", "gain", "mute", "spread"]
+    assert sorted(c.param for c in cmds) == ["azimuth", "distance", "elevation", "gain", "mute", "solo", "spread"]
     # /source/vox/* with 0.5: mute refuses it, the rest take it
     assert "mute" not in {c.param for c in parse_message("/source/vox/*", (0.5,), IDS, match=_glob)}
     # when nothing fits, the first error is raised

@@ -24,7 +24,7 @@ from conftest import REPO
 from fieldmix.control import ADDRESSES
 from fieldmix.errors import ConfigError, ControlError
 from fieldmix.live.core import LiveCore
-from fieldmix.live.osc import ECHO_IGNORED, SERVER_ADDRESSES, STATUS_KEYS, OscServer
+from fieldmix.live.osc import ECHO_IGNORED, SERVER_ADDRESSES, SOURCE_OUTPUT, STATUS_KEYS, OscServer
 from fieldmix.oscwire import (
     Limits,
     OscMessage,
@@ -158,6 +158,7 @@ def test_every_control_address_over_udp_changes_the_state():
             c.msg(srv, "/source/2/gain", -7.5)  # 1-based index
             c.msg(srv, "/source/3/mute", 1)
             c.msg(srv, "/source/gulls/spread", 45.0)
+            c.msg(srv, "/source/buoy/solo", 1)
             c.msg(srv, "/master/gain", -3)
             c.msg(srv, "/master/mute", 1)
             await c.barrier(srv)
@@ -170,6 +171,7 @@ def test_every_control_address_over_udp_changes_the_state():
             assert src(core, "waves").gain_db == -7.5
             assert src(core, "engine").mute is True
             assert src(core, "gulls").spread == 45.0
+            assert src(core, "buoy").solo is True and not src(core, "waves").solo
             assert core.state.master_gain_db == -3.0
             assert core.state.master_mute is True
             # position without z keeps the height
@@ -177,11 +179,11 @@ def test_every_control_address_over_udp_changes_the_state():
             await c.barrier(srv)
             assert np.allclose(src(core, "gulls").position, [-1.0, 3.0, 0.5])
             # every grammar template was exercised above
-            sent = {"azimuth", "elevation", "distance", "position", "gain", "mute", "spread"}
+            sent = {"azimuth", "elevation", "distance", "position", "gain", "mute", "solo", "spread"}
             assert {s.param for s in ADDRESSES.values() if s.target == "source"} == sent
             st = srv.stats()
-            assert st["applied"] == 10 + 2  # ten messages and the two barriers' /ping
-            assert st["rejected_total"] == 0 and core.applied["osc"] == 10
+            assert st["applied"] == 11 + 2  # eleven messages and the two barriers' /ping
+            assert st["rejected_total"] == 0 and core.applied["osc"] == 11
             c.close()
 
     run(main())
@@ -1071,7 +1073,7 @@ def test_a_large_update_is_spread_over_flushes_and_arrives_complete():
                     await surface.wait_for(lambda m, a=f"/source/{sid}/{f}": m.address == a)
             await flushed(surface, core)
             addresses = [m.address for m in surface.inbox if m.address.startswith("/source/")]
-            assert len(addresses) == len(set(addresses)) == 4 * 7  # each once, nothing lost or doubled
+            assert len(addresses) == len(set(addresses)) == 4 * len(SOURCE_OUTPUT)  # each once, nothing lost or doubled
             surface.close()
 
     run(main())

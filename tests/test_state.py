@@ -17,8 +17,9 @@ def show():
 
 def _cmds(state, address, *args):
     from fieldmix.control import parse_message
+    from fieldmix.live.core import osc_match
 
-    return parse_message(address, list(args), state.source_ids)
+    return parse_message(address, list(args), state.source_ids, match=osc_match if any(c in address for c in "*?[{") else None)
 
 
 def test_target_composes_pan_gain_mute_trim_master(show):
@@ -43,6 +44,28 @@ def test_target_composes_pan_gain_mute_trim_master(show):
     assert not st.target_matrix()[0].any()
     st.apply_all(_cmds(st, "/master/mute", 1))
     assert not st.target_matrix().any()
+
+
+def test_solo_in_place_silences_the_others_and_keeps_positions(show):
+    """Solo (our definition, docs/control-script.md): while any source is soloed, only the
+    soloed ones sound, with their own gains, positions and sub sends; mute still wins."""
+    from fieldmix.state import ShowState
+
+    st = ShowState(show)
+    before = st.target_matrix().copy()
+    st.apply_all(_cmds(st, "/source/engine/solo", 1))
+    G = st.target_matrix()
+    assert np.array_equal(G[2], before[2])  # the soloed source, unchanged (sub bus column too)
+    assert not np.delete(G, 2, axis=0).any()  # everyone else silent, sub sends included
+    st.apply_all(_cmds(st, "/source/{buoy,engine}/solo", 1))
+    G = st.target_matrix()
+    assert np.array_equal(G[[0, 2]], before[[0, 2]]) and not G[[1, 3]].any()
+    st.apply_all(_cmds(st, "/source/buoy/mute", 1))  # a muted soloed source stays muted
+    assert not st.target_matrix()[0].any()
+    st.apply_all(_cmds(st, "/source/*/solo", 0))
+    st.apply_all(_cmds(st, "/source/buoy/mute", 0))
+    assert np.array_equal(st.target_matrix(), before)
+    assert [s.to_dict()["solo"] for s in st.sources] == [False] * 4
 
 
 def test_cached_rows_match_a_full_recompute(show):

@@ -16,6 +16,7 @@ import contextlib
 import json
 import math
 import os
+import re
 import shutil
 import socket
 import time
@@ -196,8 +197,14 @@ def test_page_and_static_assets_are_served_and_nothing_outside_them():
             r = await s.get(base + "/")
             assert r.status == 200 and r.content_type == "text/html"
             html = await r.text()
-            assert "<h1>fieldmix</h1>" in html and "/api/state" in html and "cdn" not in html.lower()
+            assert "<title>fieldmix</title>" in html and "/static/app.js" in html and "cdn" not in html.lower()
             assert r.headers["X-Frame-Options"] == "DENY"
+            csp = r.headers["Content-Security-Policy"]
+            assert "default-src 'self'" in csp and "script-src 'self'" in csp and f"ws://127.0.0.1:{srv.port}" in csp
+            assert "frame-ancestors 'none'" in csp
+            js = await (await s.get(base + "/static/app.js")).text()
+            assert "/ws" in js and "/api/state" in js
+            assert set(re.findall(r"https?://[^\"'\s]+", js)) <= {"http://www.w3.org/2000/svg"}  # no CDN, no other host
             r = await s.get(base + "/static/index.html")
             assert r.status == 200 and await r.text() == html
             for bad in ("/static/../live/web.py", "/static/%2e%2e/live/web.py", "/static/..%2flive%2fweb.py"):

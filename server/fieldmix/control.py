@@ -49,7 +49,7 @@ RESERVED_PREFIXES = ("/cue",)
 class Command:
     target: str  # "source" | "master" (extensions may add targets)
     source: Optional[int]  # 0-based source index for target "source", else None
-    param: str  # source: azimuth|elevation|distance|position|gain|mute|spread ; master: gain|mute
+    param: str  # source: azimuth|elevation|distance|position|gain|mute|solo|spread ; master: gain|mute
     value: tuple  # floats: position (x, y) or (x, y, z); mute (0.0|1.0,); others one value
 
 
@@ -149,6 +149,11 @@ def _addresses() -> dict:
         AddressSpec(
             "/source/<id>/mute", "source", "mute", (ArgSpec("flag"),), kind="flag",
             doc="1 mutes the source, 0 unmutes it (the gain ramps, no click).",
+        ),
+        AddressSpec(
+            "/source/<id>/solo", "source", "solo", (ArgSpec("flag"),), kind="flag",
+            doc="Solo in place: while any source is soloed, only soloed sources sound, each in its "
+                "own position. 0 clears it. A rehearsal tool: solos are not autosaved.",
         ),
         AddressSpec(
             "/source/<id>/spread", "source", "spread",

@@ -9,7 +9,8 @@ The target matrix is composed here, once, for every controller:
     G[n, m]   = pan[n, m] * source_gain[n] * (not mute[n]) * trim[m] * master
     G[n, bus] = sub_send[n] * source_gain[n] * (not mute[n]) * master
 
-so trims, mutes and the master all reach the audio through the engine's
+where ``mute[n]`` also holds while another source is soloed and this one is not
+(solo in place), so trims, mutes, solos and the master all reach the audio through the engine's
 per-sample ramps, like positions do: nothing can step.
 """
 
@@ -36,6 +37,7 @@ class SourceRuntime:
     spread: float
     panner: Optional[str]  # None = the layout's panner
     sub_send_db: Optional[float]
+    solo: bool = False  # solo in place (a rehearsal tool: never saved)
 
     @property
     def id(self) -> str:
@@ -58,6 +60,7 @@ class SourceRuntime:
             "position": [round(float(v), 6) for v in self.position.tolist()],
             "gain_db": self.gain_db,
             "mute": self.mute,
+            "solo": self.solo,
             "spread": self.spread,
             "panner": self.panner,
             "sub_send_db": self.sub_send_db,
@@ -158,11 +161,13 @@ class ShowState:
             src.gain_db = float(v[0])
         elif cmd.param == "mute":
             src.mute = bool(v[0])
+        elif cmd.param == "solo":
+            src.solo = bool(v[0])
         elif cmd.param == "spread":
             src.spread = float(v[0])
         else:  # pragma: no cover
             raise ValueError(f"unknown source parameter {cmd.param!r}")
-        if cmd.param not in ("gain", "mute"):
+        if cmd.param not in ("gain", "mute", "solo"):
             self._dirty.add(cmd.source)
         self.version += 1
 
@@ -212,7 +217,10 @@ class ShowState:
         def lin(db: float) -> float:  # plain floats: numpy scalars cost microseconds each
             return 10.0 ** (db / 20.0)
 
-        src_gain = np.array([0.0 if s.mute else lin(s.gain_db) for s in self.sources], dtype=np.float64)
+        solo = any(s.solo for s in self.sources)  # solo in place: the others fall silent (ramped)
+        src_gain = np.array(
+            [0.0 if s.mute or (solo and not s.solo) else lin(s.gain_db) for s in self.sources], dtype=np.float64
+        )
         master = 0.0 if self.master_mute else lin(self.master_gain_db)
         trims = np.array([0.0 if spk.sub else lin(spk.trim_db) for spk in lay.speakers], dtype=np.float64)
         g = pan * src_gain[:, None] * trims[None, :] * master

@@ -62,6 +62,34 @@ class _Fatal(Exception):
         self.code = code
 
 
+def raise_priority(mode: str = "normal") -> str:
+    """Give the calling thread (only it: Linux schedules threads) audio priority.
+
+    ``auto``: SCHED_FIFO at priority 70 (what a realtime JACK setup gives its clients),
+    else ``nice`` -10, else unchanged; ``normal``: unchanged. Returns what it got, e.g.
+    ``"fifo 70"``, ``"nice -10"`` or ``"normal"``. Needs the right to do so (root,
+    CAP_SYS_NICE or an rtprio limit, as audio users usually have); without it nothing
+    changes. A runaway realtime thread is still bounded by the kernel's realtime
+    throttling (by default 95 % of each second), and the audio child does bounded work
+    per block.
+    """
+    if mode != "auto":
+        return "normal"
+    try:
+        lo, hi = os.sched_get_priority_min(os.SCHED_FIFO), os.sched_get_priority_max(os.SCHED_FIFO)
+        prio = max(lo, min(hi, 70))
+        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(prio))
+        return f"fifo {prio}"
+    except (AttributeError, OSError):
+        pass
+    try:
+        tid = threading.get_native_id()
+        os.setpriority(os.PRIO_PROCESS, tid, -10)  # per thread on Linux (a thread id is a task id)
+        return "nice -10"
+    except (AttributeError, OSError):
+        return "normal"
+
+
 def child_main(cfg: dict, conn) -> None:
     """Entry point of the spawned process (``cfg`` holds only plain Python values)."""
     for k, v in THREAD_ENV.items():
@@ -209,6 +237,11 @@ class AudioChild:
         self._virtual_out = self.backend == "virtual"  # outputs go to a buffer of ours
         self.file_inputs = self.backend == "virtual" or bool(cfg.get("file_inputs"))
         self.follow_jack_period = bool(cfg.get("follow_jack_period", True))
+        # "normal" by default: on the 2-vCPU VM we measure on, SCHED_FIFO for the audio thread
+        # made deadline misses under load worse, not better (docs/performance.md); "auto"
+        # is for machines where JACK itself runs realtime
+        self.priority_mode = str(os.environ.get("FIELDMIX_AUDIO_PRIORITY") or cfg.get("priority") or "normal")
+        self.priority = None  # what raise_priority() got, once the audio thread has run
 
         # messages: a receiver thread takes them, the audio path takes prepared actions
         self._outbox: deque = deque()
@@ -707,6 +740,7 @@ class AudioChild:
             "layout_gen": self.slot.gen,
             "record": self.recorder.path if self.recorder else None,
             "kernels": self.slot.engine.kernels,
+            "priority": self.priority,
         }
         d.update(extra)
         return d
@@ -736,6 +770,7 @@ class AudioChild:
         self.dev_out = self.slot.dev_out_needed
         self._vout = np.zeros((self.blocksize, self.dev_out), dtype=np.float32)
         self._start_recorder(self.dev_out)
+        self.priority = "normal"  # a demo and test clock, not a device deadline: it competes fairly
         self.post(("ready", self._info(device="virtual")))
         P = self.period
         t0 = time.monotonic()
@@ -811,6 +846,9 @@ class AudioChild:
         return stream
 
     def _callback(self, indata, outdata, frames, time_info, status) -> None:
+        if self.priority is None:  # first call, in PortAudio's audio thread: give it audio priority
+            self.priority = raise_priority(self.priority_mode)
+            self.post(("info", {"priority": self.priority}))
         try:
             if status and (status.input_overflow or status.input_underflow or status.output_underflow or status.output_overflow):
                 self.flagged += 1

@@ -541,6 +541,9 @@ class AudioLink:
                     if seg in self._segments_for_cleanup:
                         self._segments_for_cleanup.remove(seg)
             self._old_shm = keep
+        elif kind == "info":  # facts the child learns after "ready" (the audio thread's priority)
+            if isinstance(msg[1], dict):
+                self._info.update(msg[1])
         elif kind == "warning":
             self._event("warning", message=msg[1])
         elif kind == "stopped":
@@ -687,6 +690,7 @@ class AudioLink:
             "callback_errors": total("cb_errors", S.S_CB_ERRORS),
             "record": self._info.get("record"),
             "kernels": self._info.get("kernels"),
+            "priority": self._info.get("priority"),
             "record_overflow": total("rec_overflow", S.S_REC_OVERFLOW),
             "restarts": self._restarts,
             "device_losses": self._device_losses,

@@ -96,7 +96,7 @@ class LiveCore:
         self,
         show: Show,
         layouts_dir: Optional[Path] = None,
-        flush_interval: float = 0.002,
+        flush_interval: float = 0.005,
     ):
         self.show = show
         self.state = ShowState(show)

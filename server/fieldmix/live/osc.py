@@ -80,7 +80,7 @@ SERVER_ADDRESSES = (
 ECHO_IGNORED = ("/pong", "/error", "/subscribed", "/layout/active")
 
 #: What a subscriber is sent for a source (``<id>`` is the source id), in this order.
-SOURCE_OUTPUT = ("position", "azimuth", "elevation", "distance", "gain", "mute", "spread")
+SOURCE_OUTPUT = ("position", "azimuth", "elevation", "distance", "gain", "mute", "solo", "spread")
 #: ... and for the master.
 MASTER_OUTPUT = ("gain", "mute", "panic")
 
@@ -310,33 +310,56 @@ class _UdpEndpoint:
     asyncio's datagram transport reads one datagram per wake-up of the loop, and a
     wake-up costs more than decoding a small OSC packet. Here each readiness event
     drains up to ``batch`` datagrams (bounded, so a flood cannot starve the loop's
-    other work). Replies go out with a non-blocking ``sendto``; a reply the kernel
-    cannot take at once is dropped and counted (UDP promises no more).
+    other work), and after a wake-up that found traffic the socket rests for
+    ``rest_s`` (1 ms) before it is watched again, so that under a stream of packets
+    each wake-up finds several (the kernel buffers them; SO_RCVBUF is raised for
+    bursts). The first datagram after a quiet spell is handled at once. Replies go out
+    with a non-blocking ``sendto``; one the kernel cannot take at once is dropped and
+    counted (UDP promises no more).
     """
 
-    def __init__(self, server: "OscServer", sock: socket.socket, loop: asyncio.AbstractEventLoop, batch: int = 64):
+    def __init__(self, server: "OscServer", sock: socket.socket, loop: asyncio.AbstractEventLoop,
+                 batch: int = 64, rest_s: float = 0.001):  # fmt: skip
         self.server = server
         self.sock = sock
         self.loop = loop
         self.batch = batch
+        self.rest_s = rest_s
         self.closed = False
-        loop.add_reader(sock.fileno(), self._readable)
+        self._fd = sock.fileno()
+        self._resting: Optional[asyncio.TimerHandle] = None
+        loop.add_reader(self._fd, self._readable)
 
     def _readable(self) -> None:
+        if self._drain() and not self.closed and self.rest_s > 0:
+            self.loop.remove_reader(self._fd)
+            self._resting = self.loop.call_later(self.rest_s, self._wake)
+
+    def _wake(self) -> None:
+        self._resting = None
+        if self.closed:
+            return
+        self.loop.add_reader(self._fd, self._readable)
+        self._readable()
+
+    def _drain(self) -> int:
         recv = self.sock.recvfrom
         size = self.server.limits.max_packet + 1  # one more byte: an oversized packet is seen as such
         handle = self.server._on_datagram
+        n = 0
         for _ in range(self.batch):
             try:
                 data, addr = recv(size)
             except (BlockingIOError, InterruptedError):
-                return
+                break
             except OSError:  # an ICMP error queued on the socket: count it, keep reading
                 self.server.send_errors += 1
                 continue
+            n += 1
             handle(data, addr)
             if self.closed:
-                return
+                break
+        return n
 
     def sockname(self):
         return self.sock.getsockname()
@@ -357,8 +380,11 @@ class _UdpEndpoint:
         if self.closed:
             return
         self.closed = True
+        if self._resting is not None:
+            self._resting.cancel()
+            self._resting = None
         try:
-            self.loop.remove_reader(self.sock.fileno())
+            self.loop.remove_reader(self._fd)
         except (ValueError, OSError):  # pragma: no cover - already gone
             pass
         self.sock.close()
@@ -1067,6 +1093,7 @@ class OscServer:
             "distance": (float(s["distance"]),),
             "gain": (float(s["gain_db"]),),
             "mute": (int(bool(s["mute"])),),
+            "solo": (int(bool(s["solo"])),),
             "spread": (float(s["spread"]),),
         }
 

@@ -36,6 +36,7 @@ import json
 import logging
 import math
 import numbers
+import re
 import socket
 import time
 from collections import deque
@@ -92,6 +93,9 @@ CLOSE_GOING_AWAY = 1001  # the server stops
 CLOSE_POLICY = 1008  # a flood
 CLOSE_TOO_BIG = 1009  # over the hard size limit (aiohttp closes)
 CLOSE_TRY_LATER = 1013  # too slow: stayed behind (when a close frame can still be written)
+
+
+_HOST_RE = re.compile(r"[A-Za-z0-9.\-]+(:[0-9]{1,5})?|\[[0-9A-Fa-f:.]+\](:[0-9]{1,5})?")
 
 
 class WebError(Exception):
@@ -467,6 +471,14 @@ class WebServer:
             h.setdefault("X-Frame-Options", "DENY")
             if request.path.startswith("/api/"):
                 h.setdefault("Cache-Control", "no-store")
+            else:  # the page and its assets: nothing but this server, no inline script
+                host = request.host or ""
+                ws = f" ws://{host} wss://{host}" if _HOST_RE.fullmatch(host) else ""
+                h.setdefault(
+                    "Content-Security-Policy",
+                    "default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data:; "
+                    f"connect-src 'self'{ws}; frame-ancestors 'none'; base-uri 'none'; form-action 'self'",
+                )
         return resp
 
     def _json_error(self, status: int, reason: str, message: str, **extra) -> web.Response:
@@ -1196,6 +1208,9 @@ def meter_message(m: dict) -> dict:
         "age_ms": None if age is None or not math.isfinite(age) else round(age * 1000.0, 1),
         "panic": bool(m.get("panic")),
         "layout_generation": int(m.get("layout_generation") or 0),
+        "first_block": int(m.get("first_block") or 0),
+        "blocks": int(m.get("blocks") or 0),
+        "panic_block": int(m.get("panic_block") or 0),
         "in_peak": conv(m.get("in_peak", ()), peak_dbfs),
         "in_rms": conv(m.get("in_rms", ()), rms_dbfs),
         "out_peak": conv(m.get("out_peak", ()), peak_dbfs),
