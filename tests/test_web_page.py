@@ -91,9 +91,11 @@ class Daemon:
             if m := re.search(r"OSC\s*: 127\.0\.0\.1 udp (\d+)", line):
                 self.udp = int(m.group(1))
         if self.url is None or self.udp is None:
-            self.stop()
+            self.log.flush()
             self.log.seek(0)
-            raise AssertionError("daemon did not start:\n" + "".join(self.lines) + self.log.read()[-3000:])
+            err = self.log.read()[-3000:]
+            self.stop()
+            raise AssertionError("daemon did not start:\n" + "".join(self.lines) + err)
         self.port = int(re.search(r":(\d+)/", self.url).group(1))
         self.base = f"http://127.0.0.1:{self.port}"
         self.token = None
@@ -157,7 +159,10 @@ def demo(tmp_path_factory):
 
 
 def _open(browser, url: str, **ctx):
-    context = browser.new_context(**ctx)
+    # Playwright evaluates its own string predicates with eval, which the page's CSP forbids
+    # (script-src 'self'): the test context lets Playwright's probes through; the header
+    # itself is checked in test_web_api.py and below
+    context = browser.new_context(bypass_csp=True, **ctx)
     page = context.new_page()
     errors: list[str] = []
     page.on("pageerror", lambda e: errors.append(str(e)))
@@ -174,19 +179,18 @@ def _close(page):
 
 
 def _page_metres(page, selector: str) -> dict:
-    """Screen centre of each element -> plan metres (x right, y front), through the SVG's own box."""
+    """Screen centre of each element -> plan metres (x right, y front), through the SVG's own
+    screen transform (getScreenCTM: viewBox, scaling and letterboxing included)."""
     return page.evaluate(
         """(sel) => {
         const svg = document.getElementById('plan');
-        const vb = svg.viewBox.baseVal, box = svg.getBoundingClientRect();
+        const inv = svg.getScreenCTM().inverse(), vb = svg.viewBox.baseVal;
         const out = {};
         for (const g of svg.querySelectorAll(sel)) {
           const shape = g.querySelector('rect, polygon, circle');
           const r = shape.getBoundingClientRect();
-          const cx = (r.left + r.right) / 2, cy = (r.top + r.bottom) / 2;
-          const x = vb.x + (cx - box.left) / box.width * vb.width;
-          const y = -(vb.y + (cy - box.top) / box.height * vb.height);
-          out[g.dataset.id] = [x, y, vb.width];
+          const pt = new DOMPoint((r.left + r.right) / 2, (r.top + r.bottom) / 2).matrixTransform(inv);
+          out[g.dataset.id] = [pt.x, -pt.y, vb.width];
         }
         return out;
     }""",
@@ -197,9 +201,8 @@ def _page_metres(page, selector: str) -> dict:
 def _screen_of(page, x: float, y: float) -> tuple[float, float]:
     return tuple(page.evaluate(
         """([x, y]) => {
-        const svg = document.getElementById('plan');
-        const vb = svg.viewBox.baseVal, box = svg.getBoundingClientRect();
-        return [box.left + (x - vb.x) / vb.width * box.width, box.top + (-y - vb.y) / vb.height * box.height];
+        const pt = new DOMPoint(x, -y).matrixTransform(document.getElementById('plan').getScreenCTM());
+        return [pt.x, pt.y];
     }""",
         [x, y],
     ))  # fmt: skip
@@ -288,7 +291,8 @@ def test_a_3d_layout_draws_upper_speakers_distinctly(browser, demo):
         up = [s for s in spk if not s["sub"] and s["elevation"] > 10]
         ear = [s for s in spk if not s["sub"] and -10 <= s["elevation"] <= 10]
         assert up and ear
-        page.wait_for_function(f"document.querySelectorAll('#plan g.spk').length === {len(spk)}", timeout=WAIT_MS)
+        page.wait_for_function(f"document.querySelectorAll('#plan g.spk.up').length === {len(up)}", timeout=WAIT_MS)
+        assert page.locator("#plan g.spk").count() == len(spk)
         assert page.locator("#plan g.spk.up polygon").count() == len(up)
         assert page.locator("#plan g.spk.ear rect").count() == len(ear)
         fill = page.evaluate("getComputedStyle(document.querySelector('#plan g.spk.up polygon')).fill")
@@ -543,7 +547,7 @@ def test_with_a_token_the_page_asks_once_and_the_websocket_refuses_without_it(br
     page = None
     try:
         base = d.base + "/"
-        page = browser.new_context().new_page()
+        page = browser.new_context(bypass_csp=True).new_page()
         page.goto(base)
         page.wait_for_selector("#token-dialog[open]", timeout=WAIT_MS)
         # the websocket itself refuses a connection without the token (before any upgrade)
@@ -565,7 +569,7 @@ def test_with_a_token_the_page_asks_once_and_the_websocket_refuses_without_it(br
         assert next(s for s in st["sources"] if s["id"] == "buoy")["mute"] is True
         page.context.close()
         # the token from the URL: taken once, then out of the address bar
-        page = browser.new_context().new_page()
+        page = browser.new_context(bypass_csp=True).new_page()
         page.goto(base + "?token=backstage-7731")
         page.wait_for_function("window.fieldmixPage && window.fieldmixPage.state !== null", timeout=WAIT_MS)
         assert "token" not in page.url
@@ -693,14 +697,12 @@ def test_every_control_has_an_accessible_name(browser, demo):
 def test_the_wheel_carries_the_page(tmp_path):
     """Build the wheel, install it into a fresh venv, start the server from there: GET / is the page."""
     _require_browser()  # (same CI group: needs nothing more, but shares the browser tests' set-up)
-    import importlib.util
     import site
     import sysconfig
 
     wheels = tmp_path / "wheels"
-    # without setuptools here, pip builds in isolation (it fetches setuptools from the registry)
-    iso = [] if importlib.util.find_spec("setuptools") is None else ["--no-build-isolation"]
-    subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", *iso, "-q", "-w", str(wheels), str(REPO)],
+    # an isolated build, as any user's: pip takes setuptools and wheel from the package index
+    subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "-q", "-w", str(wheels), str(REPO)],
                    check=True, timeout=600)  # fmt: skip
     whl = next(wheels.glob("fieldmix-*.whl"))
     venv = tmp_path / "venv"
@@ -725,6 +727,8 @@ def test_the_wheel_carries_the_page(tmp_path):
             csp = r.headers.get("Content-Security-Policy", "")
         assert "<title>fieldmix</title>" in html and "/static/app.js" in html
         assert "default-src 'self'" in csp
+        st = d.state()  # the example show travels in the wheel too, with its layouts
+        assert st["show"] == "Harbour at dusk" and len(st["sources"]) == 4 and "ring8" in st["layouts"]
         for asset in ("app.js", "style.css"):
             with urllib.request.urlopen(f"{d.base}/static/{asset}", timeout=10) as r:
                 assert r.status == 200 and len(r.read()) > 1000

@@ -3,7 +3,7 @@
 # Without root or apt, say what is missing; the tests that need it then skip with the
 # reason (or fail, under CI=true).
 set -uo pipefail
-PKGS=(sox libportaudio2 jackd2)
+PKGS=(sox libportaudio2 jackd2 chromium)  # chromium: the browser tests (Playwright drives it; never "playwright install")
 missing=()
 for p in "${PKGS[@]}"; do
   dpkg-query -W -f='${Status}' "$p" 2>/dev/null | grep -q "install ok installed" || missing+=("$p")

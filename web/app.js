@@ -276,8 +276,8 @@
       const title = sv("title");
       title.textContent = `speaker ${s.id}, output ${s.output}` + (s.sub ? ", sub" : `, azimuth ${fmt(s.azimuth, 0)}°, elevation ${fmt(s.elevation, 0)}°, ${fmt(s.distance, 2)} m`);
       gs.appendChild(title);
-      if (level === "sub") gs.appendChild(sv("circle", { r: size * 0.6 }));
-      else if (level === "up") gs.appendChild(sv("polygon", { points: `0,${-size * 0.75} ${size * 0.75},0 0,${size * 0.75} ${-size * 0.75},0` }));
+      if (level === "sub") gs.appendChild(sv("circle", { r: size * 0.6, "stroke-width": R * 0.004 }));
+      else if (level === "up") gs.appendChild(sv("polygon", { points: `0,${-size * 0.75} ${size * 0.75},0 0,${size * 0.75} ${-size * 0.75},0`, "stroke-width": R * 0.006 }));
       else gs.appendChild(sv("rect", { x: -size / 2, y: -size / 2, width: size, height: size, rx: size * 0.15, "stroke-width": R * 0.004 }));
       // label outside the speaker, away from the centre
       const h = Math.hypot(x, y) || 1;

@@ -15,9 +15,11 @@ from typing import Optional, Sequence
 from . import __version__
 from .errors import FieldmixError
 
-REPO_ROOT = Path(__file__).resolve().parents[2]
-EXAMPLE_SHOW = REPO_ROOT / "configs" / "shows" / "harbour.json"
-EXAMPLE_SCRIPT = REPO_ROOT / "configs" / "shows" / "harbour.txt"
+# the example show and layouts: the package's "configs" (in a clone a link to the top-level
+# configs/ folder; in a wheel a copy of its layouts and shows)
+EXAMPLES = Path(__file__).resolve().parent / "configs"
+EXAMPLE_SHOW = EXAMPLES / "shows" / "harbour.json"
+EXAMPLE_SCRIPT = EXAMPLES / "shows" / "harbour.txt"
 
 
 class _Parser(argparse.ArgumentParser):
@@ -105,9 +107,14 @@ def cmd_render(args) -> int:
 def cmd_demo(args) -> int:
     from .demo_audio import ensure_demo_audio
 
+    global EXAMPLE_SHOW, EXAMPLE_SCRIPT
     if not EXAMPLE_SHOW.is_file():
-        raise FieldmixError(f"the example show is missing: {EXAMPLE_SHOW} (run from a clone of the repository)")
-    made = ensure_demo_audio(EXAMPLE_SHOW.parent / "audio")
+        raise FieldmixError(f"the example show is missing: {EXAMPLE_SHOW} (a broken installation?)")
+    try:
+        made = ensure_demo_audio(EXAMPLE_SHOW.parent / "audio")
+    except OSError:  # an installation we may not write to: the demo runs from a copy in the user's cache
+        EXAMPLE_SHOW, EXAMPLE_SCRIPT = _demo_copy()
+        made = ensure_demo_audio(EXAMPLE_SHOW.parent / "audio")
     if made:
         print(f"synthesised {len(made)} demo audio files in {made[0].parent}")
     if args.render:
@@ -119,6 +126,20 @@ def cmd_demo(args) -> int:
     if not args.still:
         opts.play, opts.play_loop = EXAMPLE_SCRIPT, True
     return serve(opts, demo=True)
+
+
+def _demo_copy() -> tuple[Path, Path]:
+    """Copy the example shows and layouts to $XDG_CACHE_HOME/fieldmix/demo (~/.cache/...)."""
+    import os
+    import shutil
+
+    base = Path(os.environ.get("XDG_CACHE_HOME") or Path.home() / ".cache") / "fieldmix" / "demo"
+    for part in ("shows", "layouts"):
+        (base / part).mkdir(parents=True, exist_ok=True)
+        for f in (EXAMPLES / part).iterdir():
+            if f.is_file() and f.suffix in (".json", ".txt"):
+                shutil.copyfile(f, base / part / f.name)
+    return base / "shows" / EXAMPLE_SHOW.name, base / "shows" / EXAMPLE_SCRIPT.name
 
 
 def _demo_render(args) -> int:
