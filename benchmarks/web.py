@@ -70,8 +70,9 @@ def _h_clients(a) -> int:
                 for x in m["messages"] if m.get("type") == "batch" else [m]:
                     t = x.get("type")
                     if t == "source" and x["source"]["id"] == SOURCE:
-                        rec["moves"].append((x["source"]["azimuth"], now))
-                        rec["last"] = x["source"]["azimuth"]
+                        az = round(x["source"]["azimuth"], 2)  # OSC carries float32: 0.1 steps survive at 0.01
+                        rec["moves"].append((az, now))
+                        rec["last"] = az
                     elif t == "meters":
                         rec["meters"] += 1
 
@@ -140,13 +141,13 @@ def run_once(d: DaemonProc, a, loaded: bool, first: int) -> dict:
     wall = c1[2] - c0[2]
     r = {"sent": len(sent), "wall": wall, "cpu_control": 100 * (c1[0] - c0[0]) / wall,
          "cpu_audio": 100 * (c1[1] - c0[1]) / wall}  # fmt: skip
-    send_t = {az: t for az, t in sent}
+    send_t = {round(az, 2): t for az, t in sent}
     delays, received, last_ok, meter_fps = [], [], [], []
     for c in clients:
         got = [(az, t) for az, t in c["moves"] if az in send_t]
         received.append(len({az for az, _ in got}))
         delays += [t - send_t[az] for az, t in got]
-        last_ok.append(bool(sent) and c["last"] == sent[-1][0])
+        last_ok.append(bool(sent) and c["last"] == round(sent[-1][0], 2))
         meter_fps.append(c["meters"] / (wall + 2.0))
     r.update(received=received, delays=delays, last_ok=last_ok, meter_fps=meter_fps)
     return r

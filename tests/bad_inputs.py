@@ -492,8 +492,50 @@ CASES = [
     _show_case(
         "show-cues-wrong-type",
         _show(cues="later"),
-        'expected a list or an object, got "later"',
+        'expected a list, got "later"',
         where="show.json: cues",
+    ),
+    _show_case(
+        "show-cue-negative-fade",
+        _show(cues=[{"number": 1, "fade": -2, "targets": {"vox": {"azimuth": 30}}}]),
+        "",
+        where="show.json: cues[0].fade",
+    ),
+    _show_case(
+        "show-cue-unknown-source",
+        _show(cues=[{"number": 1, "targets": {"drums": {"gain_db": -6}}}]),
+        "drums",
+        where="show.json: cues[0].targets.drums",
+    ),
+    _show_case(
+        "show-cue-duplicate-number",
+        _show(cues=[{"number": 2.5}, {"number": "2.5"}]),
+        "duplicate cue number",
+        where="show.json: cues[1].number",
+    ),
+    _show_case(
+        "show-cue-bad-motion",
+        _show(cues=[{"number": 1, "targets": {"vox": {"motion": {"kind": "orbit", "radius": -1, "period": 10}}}}]),
+        "",
+        where="show.json: cues[0].targets.vox.motion.radius",
+    ),
+    _show_case(
+        "show-mapping-empty-input-range",
+        _show(mappings=[{"address": "/sensor/a", "source": "vox", "param": "distance", "in": [5, 5], "out": [1, 4]}]),
+        "",
+        where="show.json: mappings[0].in",
+    ),
+    _show_case(
+        "show-mapping-takes-a-control-address",
+        _show(mappings=[{"address": "/source/vox/gain", "source": "vox", "param": "gain_db", "in": [0, 1], "out": [-40, 0]}]),
+        "",
+        where="show.json: mappings[0].address",
+    ),
+    _show_case(
+        "show-mapping-unknown-param",
+        _show(mappings=[{"address": "/sensor/a", "source": "vox", "param": "colour", "in": [0, 1], "out": [0, 1]}]),
+        "colour",
+        where="show.json: mappings[0].param",
     ),
     # ------------------------------------------------------------------ scripts
     _script_case(
@@ -537,7 +579,7 @@ CASES = [
         "0 /source/vox/azimut 10\n",
         'unknown address "/source/vox/azimut"',
     ),
-    _script_case("script-reserved-cue", "0 /cue/go 1\n", "reserved for cues"),
+    _script_case("script-reserved-cue", "0 /cue/go 1\n", "fires the live server's cues"),
     _script_case(
         "script-bad-arg-count",
         "0 /source/vox/azimuth 10 20\n",

@@ -209,7 +209,7 @@ def test_messages_name_the_address():
     assert "/source/vox/elevation" in err("/source/vox/elevation", 95).message
     assert "-90 .. 90" in err("/source/vox/elevation", 95).message
     assert "<x> <y> [<z>]" in err("/source/vox/position", 1).message
-    assert "reserved for cues" in err("/cue/1/go").message
+    assert "fires the live server's cues" in err("/cue/1/go").message
     assert '"/source/vox/azimuth"' in err("/source/vox/azimut", 1).message
 
 
@@ -446,7 +446,7 @@ def test_bad_script(case, tmp_path):
 
 def test_docs_script_example_parses():
     doc = (ROOT / "docs" / "control-script.md").read_text(encoding="utf-8")
-    blocks = re.findall(r"```\n(.*?)```", doc, flags=re.S)
+    blocks = re.findall(r"```[a-z]*\n(.*?)```", doc, flags=re.S)
     script = [b for b in blocks if b.lstrip().startswith("# Night walk")][0]
     events = parse_script_text(script, "docs/control-script.md", ("vox", "gtr"))
     assert len(events) == 7 and events[-1].commands == (Command("master", None, "gain", (-12.0,)),)

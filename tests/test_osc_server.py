@@ -510,14 +510,19 @@ def test_a_layout_that_cannot_load_is_reported_and_the_old_one_kept(tmp_path):
     run(main())
 
 
-def test_cue_addresses_are_reserved():
+def test_cue_addresses_reach_the_cue_list():
+    """/cue/... goes to the live core's cue list (fieldmix.live.automation); the example show
+    has no cue 7, so the desk's GO is refused and reported, and the state stays as it was."""
     async def main():
         async with serving() as (core, srv):
             c = await client()
             c.msg(srv, "/subscribe")
-            c.msg(srv, "/cue/go", 1)
+            c.msg(srv, "/cue/go", 7)
             m = await c.wait_for(lambda m: m.address == "/error")
-            assert m.args[0] == "unknown_address" and "reserved for cues" in m.args[1] and m.args[2] == "/cue/go"
+            assert m.args[0] == "out_of_range" and "7" in m.args[1] and m.args[2] == "/cue/go"
+            c.msg(srv, "/cue/fly")
+            m = await c.wait_for(lambda m: m.address == "/error" and m.args[2] == "/cue/fly")
+            assert m.args[0] == "unknown_address"
             c.close()
 
     run(main())

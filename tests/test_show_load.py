@@ -156,12 +156,12 @@ def test_reserved_keys_kept_in_raw(tmp_path):
         tmp_path,
         [{"id": "a", "input": 1}],
         layout_rel="../layouts/quad.json",
-        cues=[{"anything": 1}],
-        mappings={"later": True},
+        cues=[{"number": 1, "name": "one"}],
+        mappings=[],
         network={"osc_port": 9000},
     )
-    assert show.raw["cues"] == [{"anything": 1}]
-    assert show.raw["mappings"] == {"later": True}
+    assert show.raw["cues"] == [{"number": 1, "name": "one"}] and [c.number for c in show.cues] == [1.0]
+    assert show.raw["mappings"] == [] and show.mappings == ()
     assert show.raw["network"] == {"osc_port": 9000}
 
 

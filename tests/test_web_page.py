@@ -358,6 +358,30 @@ def test_dragging_a_source_reaches_the_server_osc_and_a_second_page(browser, dem
         _close(other)
 
 
+def test_a_finger_drags_a_source_too(browser, demo):
+    """Touch input (a tablet): Chromium's touch events, sent through the DevTools protocol,
+    drive the same pointer handlers; the page must not scroll or zoom instead."""
+    page = _open(browser, demo.url, viewport={"width": 820, "height": 1180}, has_touch=True, is_mobile=True)
+    try:
+        gulls = demo.source("gulls")
+        x0, y0 = _screen_of(page, gulls["position"][0], gulls["position"][1])
+        target = (-1.5, -2.0)
+        x1, y1 = _screen_of(page, *target)
+        cdp = page.context.new_cdp_session(page)
+        cdp.send("Input.dispatchTouchEvent", {"type": "touchStart", "touchPoints": [{"x": x0, "y": y0}]})
+        for k in range(1, 21):
+            cdp.send("Input.dispatchTouchEvent", {"type": "touchMove", "touchPoints": [{"x": x0 + (x1 - x0) * k / 20, "y": y0 + (y1 - y0) * k / 20}]})
+            page.wait_for_timeout(15)
+        cdp.send("Input.dispatchTouchEvent", {"type": "touchEnd", "touchPoints": []})
+        st = demo.wait(lambda s: math.hypot(next(q for q in s["sources"] if q["id"] == "gulls")["position"][0] - target[0],
+                                            next(q for q in s["sources"] if q["id"] == "gulls")["position"][1] - target[1]) < 0.15,
+                       what="touch drag")  # fmt: skip
+        assert page.evaluate("window.scrollY") == 0  # the plan took the gesture, the page did not scroll
+        assert next(q for q in st["sources"] if q["id"] == "gulls")["mute"] is False
+    finally:
+        _close(page)
+
+
 def test_osc_changes_appear_on_the_page(browser, demo):
     page = _open(browser, demo.url)
     try:
@@ -493,6 +517,48 @@ def test_meters_move_and_panic_silences_until_a_deliberate_release(browser, demo
         demo.wait(lambda s: s["master"]["panic"] is False, what="released again")
     finally:
         _close(page)
+
+
+def test_the_cue_panel_fires_cues_and_shows_their_progress(browser, tmp_path):
+    """The demo show's cue list on the page: GO fires the standby cue (the server's cue
+    state and the source move), a fade shows its progress, a row puts its cue on standby,
+    a cue with a motion starts it, Stop freezes."""
+    d = _demo(tmp_path)
+    page = None
+    try:
+        page = _open(browser, d.url)
+        page.wait_for_selector("#cue-panel", state="visible", timeout=WAIT_MS)
+        assert page.locator("#cue-list li").count() == 4
+        assert page.locator("#cue-go").text_content().strip() == "GO 1"
+        page.click("#cue-go")
+        st = d.wait(lambda s: s["cues"]["current"] is not None and s["cues"]["current"]["label"] == "1", what="cue 1 fired")
+        page.wait_for_selector("#cue-running .bar", timeout=WAIT_MS)  # its 4 s fade, with a progress bar
+        page.wait_for_function("document.getElementById('cue-current').textContent.startsWith('1 Evening')", timeout=WAIT_MS)
+        d.wait(lambda s: next(q for q in s["sources"] if q["id"] == "waves")["gain_db"] == pytest.approx(-6, abs=1e-6)
+               and not s["cues"]["running"], what="cue 1 done", timeout=20)  # fmt: skip
+        page.wait_for_function("document.querySelectorAll('#cue-running .bar').length === 0", timeout=WAIT_MS)
+        # choose cue 2.5 on the list: it goes on standby; GO starts the gulls' orbit
+        page.locator("#cue-list li[data-number='2.5']").click()
+        d.wait(lambda s: s["cues"]["next"]["label"] == "2.5", what="standby 2.5")
+        page.wait_for_function("document.getElementById('cue-go').textContent.trim() === 'GO 2.5'", timeout=WAIT_MS)
+        page.click("#cue-go")
+        d.wait(lambda s: s["cues"]["motions"].get("gulls") == "orbit", what="orbit running")
+        a0 = d.source("gulls")["azimuth"]
+        d.wait(lambda s: abs(next(q for q in s["sources"] if q["id"] == "gulls")["azimuth"] - a0) > 5, what="gulls moving")
+        # GO 3 (a 6 s fade), then Stop freezes it part-way
+        page.click("#cue-go")
+        d.wait(lambda s: s["cues"]["running"], what="cue 3 fading")
+        page.wait_for_timeout(1500)
+        page.click("#cue-stop")
+        st = d.wait(lambda s: not s["cues"]["running"], what="stopped")
+        g = st["master"]["gain_db"]
+        assert -12 < g < -6, g  # frozen part-way between -6 and -12
+        time.sleep(0.5)
+        assert d.state()["master"]["gain_db"] == pytest.approx(g, abs=1e-9)
+    finally:
+        if page is not None:
+            _close(page)
+        d.stop()
 
 
 def test_status_line_shows_audio_and_traffic(browser, demo):

@@ -146,6 +146,7 @@
       case "layout": if (S.state) { onLayout(m.layout); } return;
       case "status": if (S.state) { S.state.status = m.status; renderStatus(); } return;
       case "meters": S.meters = m; S.metersDirty = true; return;
+      case "cues": if (S.state) { S.state.cues = m.cues; renderCues(); } return;
       case "alert": onAlert(m.alert || {}); return;
       case "ack": S.pending.delete(m.id); if (m.request === "layout") toast("layout " + m.layout + " loaded"); return;
       case "error": onError(m); return;
@@ -217,6 +218,7 @@
     renderLayoutError();
     renderLayoutChooser();
     renderSolo();
+    renderCues();
   }
 
   // ------------------------------------------------------------------ plan view
@@ -685,6 +687,59 @@
     });
   }
 
+  // ------------------------------------------------------------------ cues
+  const cueText = (c) => (c ? `${c.label}${c.name ? " " + c.name : ""}` : "–");
+  function renderCues() {
+    const st = S.state.cues;
+    const panel = $("cue-panel");
+    const list = st && st.cues ? st.cues : [];
+    panel.hidden = list.length === 0;
+    if (!list.length) return;
+    $("cue-current").textContent = cueText(st.current);
+    $("cue-next").textContent = cueText(st.next);
+    const go = $("cue-go");
+    go.disabled = !st.next;
+    go.textContent = st.next ? `GO ${st.next.label}` : "GO (end)";
+    go.setAttribute("aria-label", st.next ? `GO: fire cue ${cueText(st.next)}` : "GO: no cue on standby");
+    const run = $("cue-running");
+    run.textContent = "";
+    for (const r of st.running || []) {
+      const line = el("div", { class: "run" });
+      if (r.state === "waiting") {
+        line.textContent = `${r.cue} waiting, starts in ${fmt(r.starts_in, 1)} s`;
+      } else {
+        line.append(document.createTextNode(`${r.cue}${r.name ? " " + r.name : ""}`));
+        const bar = el("span", { class: "bar", role: "progressbar", "aria-valuemin": "0", "aria-valuemax": "100",
+                                 "aria-valuenow": String(Math.round(100 * (r.progress || 0))), "aria-label": `fade of cue ${r.cue}` });
+        const fill = el("i");
+        fill.style.width = `${Math.round(100 * (r.progress || 0))}%`;
+        bar.appendChild(fill);
+        line.append(bar, document.createTextNode(`${Math.round(100 * (r.progress || 0))} % · ${fmt(r.remaining, 1)} s left`));
+      }
+      run.appendChild(line);
+    }
+    if (st.chain_in !== null && st.chain_in !== undefined) run.appendChild(el("div", {}, `next cue follows in ${fmt(st.chain_in, 1)} s`));
+    const ol = $("cue-list");
+    ol.textContent = "";
+    for (const c of list) {
+      const li = el("li", { "data-number": String(c.number), tabindex: "0", role: "button",
+                            "aria-label": `cue ${cueText(c)}, fade ${c.fade} s: put on standby` });
+      li.classList.toggle("current", !!st.current && st.current.number === c.number);
+      li.classList.toggle("next", !!st.next && st.next.number === c.number);
+      li.append(el("span", { class: "num" }, c.label), el("span", { class: "name" }, c.name || ""),
+                el("span", { class: "fade" }, `${c.wait ? "wait " + c.wait + " s · " : ""}${c.fade} s${c.chain ? " · chain" : ""}`));
+      const standby = () => control("/cue/standby", [c.number]);
+      li.addEventListener("click", standby);
+      li.addEventListener("keydown", (ev) => { if (ev.key === "Enter" || ev.key === " ") { ev.preventDefault(); standby(); } });
+      ol.appendChild(li);
+    }
+  }
+  function bindCues() {
+    $("cue-go").addEventListener("click", () => control("/cue/go", []));
+    $("cue-back").addEventListener("click", () => control("/cue/back", []));
+    $("cue-stop").addEventListener("click", () => control("/cue/stop", []));
+  }
+
   // ------------------------------------------------------------------ layouts
   function refreshLayouts() {
     fetch("/api/layouts", { headers: token ? { Authorization: "Bearer " + token } : {}, cache: "no-store" })
@@ -752,6 +807,7 @@
   // ------------------------------------------------------------------ start
   bindInspector();
   bindMaster();
+  bindCues();
   document.addEventListener("visibilitychange", () => {
     if (document.visibilityState === "visible" && S.ws && S.ws.readyState === WebSocket.OPEN) send({ type: "snapshot" });
   });

@@ -184,8 +184,14 @@ def _serve_options(args, show: Path):
 
 def cmd_serve(args) -> int:
     from .live.daemon import serve
+    from .show import load_show
 
-    return serve(_serve_options(args, Path(args.show)))
+    opts = _serve_options(args, Path(args.show))
+    if args.play:
+        show = load_show(Path(args.show))
+        _load_events(show, args.play)  # a broken script: one line with its place, exit 2, before anything starts
+        opts.play, opts.play_loop = Path(args.play), bool(args.loop)
+    return serve(opts)
 
 
 def cmd_devices(args) -> int:
@@ -234,6 +240,8 @@ def build_parser() -> argparse.ArgumentParser:
     srv = sub.add_parser("serve", help="run the live server on a show")
     srv.add_argument("show", help="show JSON file")
     srv.add_argument("--virtual", action="store_true", help="use the virtual audio device (plays the sources' files)")
+    srv.add_argument("--play", metavar="SCRIPT", help="replay a control script (e.g. a recording) into the live server")
+    srv.add_argument("--loop", action="store_true", help="with --play: start the script again when it ends")
     _add_serve_options(srv)
     srv.set_defaults(func=cmd_serve)
 

@@ -22,7 +22,8 @@ azimuth any finite number (wrapped to (-180, 180]); elevation -90..90 degrees; d
 0..1000 m; each position coordinate -1000..1000 m; source gain -120..+24 dB (room to lift
 a quiet feed); master gain -120..+12 dB (the master only trims the whole mix); mute
 exactly 0 or 1; spread 0..360 degrees. Booleans are refused as numbers (OSC T/F, JSON
-true), as are strings, bytes and None. ``/cue/...`` is reserved for cues.
+true), as are strings, bytes and None. ``/cue/...`` belongs to the live server's cue list
+(fieldmix.live.automation), not to this grammar.
 """
 
 from __future__ import annotations
@@ -43,6 +44,13 @@ from fieldmix.jsonload import decode_utf8, oneline, read_bytes
 MatchFn = Callable[[str, Sequence], Sequence[int]]  # candidates: names, or tuples of names (id, index)
 
 RESERVED_PREFIXES = ("/cue",)
+
+#: Addresses the live server's transports handle themselves (beside the grammar): a sensor
+#: mapping may not take them.
+TRANSPORT_ADDRESSES = (
+    "/ping", "/status", "/subscribe", "/unsubscribe", "/layout/load", "/master/panic",
+    "/record/start", "/record/stop",
+)
 
 
 @dataclass(frozen=True)
@@ -212,7 +220,8 @@ def parse_message(
             if address == pre or address.startswith(pre + "/"):
                 raise ControlError(
                     "unknown_address",
-                    f'unknown address "{_clip(address)}": {pre}/... is reserved for cues (not available yet)',
+                    f'unknown address "{_clip(address)}": {pre}/... fires the live server\'s cues '
+                    "(over OSC or from the page); a control script holds changes, not cue commands",
                 )
         raise ControlError("unknown_address", f'unknown address "{_clip(address)}"{_suggest(parts, table)}')
 

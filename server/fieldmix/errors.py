@@ -41,6 +41,7 @@ class ControlError(FieldmixError):
         "bad_type",
         "not_finite",
         "out_of_range",
+        "busy",
     )
 
     def __init__(self, reason: str, message: str):

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Optional
+from typing import Any, Optional
 
 PANNERS = ("pairwise", "vbap", "dbap")
 SOURCE_PANNERS = PANNERS + ("direct",)
@@ -103,6 +103,8 @@ class Show:
     glide_ms: float = 30.0
     samplerate: int = 48000  # offline render rate; live rate comes from the device
     raw: dict = field(default_factory=dict, compare=False, repr=False)  # the parsed JSON, for keys later issues add
+    cues: Any = field(default=None, compare=False, repr=False)  # fieldmix.cues.CueList (None: no cues key)
+    mappings: tuple = field(default=(), compare=False, repr=False)  # fieldmix.mappings.Mapping, in file order
 
     @property
     def source_ids(self) -> tuple[str, ...]:

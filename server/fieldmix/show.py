@@ -12,8 +12,10 @@ NaN/duplicate keys, schema ``schemas/show.schema.json``, then the rules here:
 
 Relative paths (``layout``, each source's ``file``) resolve against the show file's
 folder. Whether an audio file exists and has the right rate is the renderer's check.
-The keys later issues add (``cues``, ``mappings``, ``network``) are accepted unvalidated
-and kept in ``Show.raw``; any other unknown key is an error (typo protection).
+``cues`` (fieldmix.cues, docs/cues.md) and ``mappings`` (fieldmix.mappings,
+docs/mappings.md) are checked by their own parsers, with places below the key
+(``show.json: cues[3].fade``); ``network`` is read by the live server. Any other unknown
+key is an error (typo protection).
 """
 
 from __future__ import annotations
@@ -149,11 +151,24 @@ def show_from_dict(
             )
         )
 
+    from fieldmix.control import TRANSPORT_ADDRESSES
+    from fieldmix.cues import parse_cues
+    from fieldmix.mappings import parse_mappings
+
+    ids = tuple(s.id for s in sources)
+    cues = parse_cues(data.get("cues"), join_where(where, ("cues",)), ids) if "cues" in data else None
+    mappings = (
+        tuple(parse_mappings(data["mappings"], join_where(where, ("mappings",)), ids, reserved=TRANSPORT_ADDRESSES))
+        if "mappings" in data
+        else ()
+    )
     return Show(
         path=path,
         layout_path=layout_path,
         layout=layout,
         sources=tuple(sources),
+        cues=cues,
+        mappings=mappings,
         master_gain_db=float(data.get("master_gain_db", 0.0)),
         glide_ms=float(data.get("glide_ms", DEFAULT_GLIDE_MS)),
         samplerate=int(data.get("samplerate", DEFAULT_SAMPLERATE)),

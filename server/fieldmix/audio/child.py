@@ -287,6 +287,7 @@ class AudioChild:
         # counters and meter accumulators (preallocated)
         self.blocks = 0
         self.frames_seen = 0  # frames of the last callback (on JACK: the server's period)
+        self.frame_pos = 0  # frames processed by this child (the sample position of the next block)
         self._period_reported = False
         self.flagged = 0
         self.expected = 0
@@ -519,6 +520,13 @@ class AudioChild:
         if r.read() == r.NEW:
             try:
                 eng.set_target(r.scratch)
+                # when this version starts to sound: its frame position (for recordings of control)
+                beat = self.shm.beat
+                n = int(beat[S.B_APPLIED_N])
+                k = S.B_RING + 2 * (n % S.RING_LEN)
+                beat[k] = r.version
+                beat[k + 1] = self.frame_pos
+                beat[S.B_APPLIED_N] = n + 1
             except (ValueError, FieldmixError):  # an out-of-range matrix: the previous target stays
                 self.bad_targets += 1
         if r.panic != self.panic:
@@ -581,6 +589,7 @@ class AudioChild:
             self._t_first_pending = False
             self.t_first = now
         self.blocks += 1
+        self.frame_pos += frames
         self.frames_seen = frames
         self.expected = self._exp_base + int((now - self.t_first) * self.sr / frames) + 1
         beat = self.shm.beat

@@ -199,6 +199,8 @@ class AudioLink:
         self._stopping = False
         self._state = "stopped"
         self._info: dict = {}
+        self._ring_gen = -1  # applied_targets(): the child generation and ring entries read
+        self._ring_seen = 0
         self._last_error: Optional[str] = None
         self._last_error_kind: Optional[str] = None
         self._lost_at: Optional[float] = None
@@ -385,6 +387,30 @@ class AudioLink:
         self.fade_out_and_stop()
 
     # ================================================================ control side, per block
+    def applied_targets(self) -> list:
+        """(version, frame) for each target version the current child has taken since the
+        last call: the frame position (samples since the child's first block, which is
+        also sample 0 of a ``record`` file) at which it started to sound. Entries that the
+        ring overwrote before this call are missing (the caller estimates those)."""
+        seg = self._shm
+        if seg is None or seg.closed:
+            return []
+        if self._ring_gen != self._child_gen:
+            self._ring_gen, self._ring_seen = self._child_gen, 0
+        beat = seg.beat
+        n = int(beat[S.B_APPLIED_N])
+        if n < self._ring_seen:  # a fresh segment or child: start over
+            self._ring_seen = 0
+        first = max(self._ring_seen, n - S.RING_LEN)
+        out = []
+        for i in range(first, n):
+            k = S.B_RING + 2 * (i % S.RING_LEN)
+            out.append((int(beat[k]), int(beat[k + 1])))
+        if int(beat[S.B_APPLIED_N]) - first > S.RING_LEN:  # overwritten while we read: drop the oldest
+            out = out[int(beat[S.B_APPLIED_N]) - first - S.RING_LEN:]
+        self._ring_seen = n
+        return out
+
     def push_targets(self, G) -> int:
         """Publish a new target matrix (n_inputs x columns of the current layout); returns its version."""
         if G.shape != self._targets.shape:

@@ -93,7 +93,10 @@ B_MAIN = 0  # time.monotonic() written by the child's supervising loop
 B_AUDIO = 1  # time.monotonic() of the last block
 B_PID = 2  # child pid (as a float; exact below 2**53)
 B_FADED = 3  # 1.0 once the engine has faded out (written every block)
-B_WORDS = 8
+B_APPLIED_N = 4  # entries ever written to the applied-targets ring below (a count, as a float)
+B_RING = 8  # ring of (target version, frame position) pairs: when each new target took effect
+RING_LEN = 64  # entries (a 5 ms push rate fills it in 0.32 s; the control process reads it at 10 Hz or more)
+B_WORDS = B_RING + 2 * RING_LEN
 
 
 def _up(n: int, a: int = ALIGN) -> int:

@@ -114,6 +114,10 @@ class LiveCore:
         self._pushed_version = -1
         self._ratelog = RateLimitedLog(log)
         self.started = time.time()
+        self.recorder = None  # a live.recording.ControlRecorder, attached by the daemon
+        from .automation import Automation  # (imports the cue, motion and mapping modules)
+
+        self.automation = Automation(self)
 
     # ------------------------------------------------------------ listeners
     def add_listener(self, fn: Listener) -> None:
@@ -138,6 +142,14 @@ class LiveCore:
         """Parse and apply one control message; ControlError (counted, reported) if it is refused."""
         # a literal address takes the grammar's exact lookup (same result, about 4x faster)
         match = osc_match if isinstance(address, str) and _PATTERN_CHARS.search(address) else None
+        if self.automation.handles(address):  # cues, motions, recording
+            try:
+                n = self.automation.apply(address, args, origin)
+            except ControlError as exc:
+                self.reject(exc, origin, address)
+                raise
+            self.applied[origin] += n
+            return []
         try:
             cmds = parse_message(address, list(args), self.state.source_ids, match=match)
         except ControlError as exc:
@@ -166,6 +178,8 @@ class LiveCore:
                 if c.param == "mute" and not c.value[0]:
                     release = True
         self.applied[origin] += len(cmds)
+        if self.recorder is not None and self.recorder.active:
+            self.recorder.add(cmds)  # written with the time of the push that takes them to the audio
         if release and self.panicked:  # "/master/mute 0" releases panic, from every controller
             self.panicked = False
             if self.link is not None:
@@ -175,6 +189,13 @@ class LiveCore:
         if master:
             self.emit({"type": "master", "master": self.master_dict(), "origin": origin})
         self.schedule_flush()
+
+    def resolve_sources(self, part: str) -> tuple:
+        """Source indices for one address part: an id, a 1-based number or an OSC pattern."""
+        from ..control import _resolve_sources
+
+        match = osc_match if _PATTERN_CHARS.search(part) else None
+        return _resolve_sources(part, self.state.source_ids, match)
 
     def master_dict(self) -> dict:
         return {"gain_db": self.state.master_gain_db, "mute": self.state.master_mute, "panic": self.panicked}
@@ -201,12 +222,22 @@ class LiveCore:
     def flush(self) -> None:
         self._flush_handle = None
         self._last_flush = time.monotonic()
-        if self.state.version == self._pushed_version:
-            return
+        v = None
+        if self.state.version != self._pushed_version:
+            G = self.state.target_matrix()
+            self._pushed_version = self.state.version
+            if self.link is not None:
+                v = self.link.push_targets(G)
+        if self.recorder is not None:
+            self.recorder.commit(v)
+
+    def push_now(self) -> Optional[int]:
+        """Push the current targets at once, changed or not; their version (None without audio)."""
+        if self.link is None:
+            return None
         G = self.state.target_matrix()
         self._pushed_version = self.state.version
-        if self.link is not None:
-            self.link.push_targets(G)
+        return self.link.push_targets(G)
 
     # -------------------------------------------------------------- layouts
     def available_layouts(self) -> list[str]:
@@ -260,6 +291,19 @@ class LiveCore:
             "messages": {"applied": dict(self.applied), "rejected": dict(self.rejected)},
             "last_error": self.last_error,
             "uptime_s": round(time.time() - self.started, 3),
+            "automation": self._automation_status(),
+            "recording": self.recorder.info() if self.recorder is not None else None,
+        }
+
+    def _automation_status(self) -> dict:
+        a = self.automation
+        return {
+            "ticks": a.ticks,
+            "tick_ms_mean": round(1e3 * a.tick_seconds / a.ticks, 4) if a.ticks else None,
+            "tick_ms_max": round(1e3 * a.tick_max, 4),
+            "motions": len(a.motions),
+            "mappings": len(a.mappings),
+            "errors": a.errors,
         }
 
     def snapshot(self) -> dict:
@@ -270,6 +314,7 @@ class LiveCore:
             "layouts": self.available_layouts(),
             "master": self.master_dict(),
             "sources": [s.to_dict() for s in self.state.sources],
+            "cues": self.automation.status(),
             "status": self.status(),
         }
 

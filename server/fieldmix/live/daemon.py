@@ -134,6 +134,11 @@ class Daemon:
 
         self._restore()
         self._start_audio()
+        from .persist import user_state_dir
+        from .recording import ControlRecorder
+
+        self.core.recorder = ControlRecorder(self.core, fallback=user_state_dir() / "recordings")
+        await self.core.automation.start()
         self.osc = OscServer(self.core, host=self.host, udp_port=self.osc_port, allow=self.allow or None)
         await self.osc.start()
         self.web = WebServer(
@@ -195,6 +200,8 @@ class Daemon:
             try:
                 for ev in self.link.poll():
                     log.info("audio: %s", ev)
+                if self.core.recorder is not None:
+                    self.core.recorder.poll()
                 st = self.link.state
                 if st != last_state:
                     self.core.emit({"type": "audio", "state": st})
@@ -235,6 +242,12 @@ class Daemon:
                 self.store.save_now()
             except Exception:
                 log.exception("could not save the state")
+        try:
+            await self.core.automation.stop()
+            if self.core.recorder is not None:
+                self.core.recorder.close()
+        except Exception:
+            log.exception("stopping the automation or the recording failed")
         for part in (self.player, self.advertiser, self.watcher, self.web, self.osc):
             if part is not None:
                 try:

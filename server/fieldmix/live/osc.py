@@ -589,6 +589,7 @@ class OscServer:
         self._ratelog = RateLimitedLog(log)
         self._trace_next = 0.0
         self.ignored = 0
+        self.mapped = 0  # messages taken by a sensor mapping
 
         self._handlers = {
             "/ping": self._h_ping,
@@ -728,6 +729,7 @@ class OscServer:
             "messages": self.messages,
             "applied": self.applied,
             "ignored": self.ignored,
+            "mapped": self.mapped,
             "rejected": dict(self.rejected),
             "rejected_total": sum(self.rejected.values()),
             "malformed": dict(self.malformed),
@@ -815,6 +817,10 @@ class OscServer:
             handler = self._handlers.get(address)
             if handler is None:
                 args = msg.args
+                if self.core.automation.feed(address, args):  # a sensor mapping took it
+                    self.mapped += 1
+                    self.applied += 1
+                    return
                 if args and any(isinstance(a, bool) for a in args) and _flag_only(address):
                     args = tuple(int(a) if isinstance(a, bool) else a for a in args)
                 self.core.apply_message(address, args, origin="osc")  # counts and reports its errors
