@@ -448,3 +448,56 @@ def test_round_trip_record_live_render_offline_compare(tmp_path):
     lag = min(lags, key=lambda g: errors(g)[0])
     rel, db = errors(lag)
     assert rel <= 0.03 and db <= 0.5, (rel, db, lag)
+
+
+def test_a_fade_ends_on_time_in_audio_time(tmp_path):
+    """A recording is timed in audio time (the frame at which each target sounded), so it
+    shows when a cue's first and last targets reached the speakers. With the fade evaluated
+    one glide ahead, the last target must sound (fade - glide) after the first, and the
+    engine's ramp then lands on the final value at the fade's end. Tolerance: one audio
+    block (128 frames here) plus the 5 ms push interval."""
+    show = _show(tmp_path, mappings=[])
+    d = Daemon(show)
+    try:
+        d.ping()
+        d.send("/record/start", "fade")
+        d.ping()
+        time.sleep(0.3)
+        d.send("/cue/go", 1)  # azimuth 45 -> -45 over 1 s
+        d.wait(lambda s: s["cues"]["current"] is not None and not s["cues"]["running"], timeout=15)
+        time.sleep(0.3)
+        d.send("/record/stop")
+        d.ping()
+        time.sleep(0.3)
+    finally:
+        rc, out = d.stop()
+    assert rc == 0, out
+    from fieldmix.control import parse_script
+    from fieldmix.show import load_show
+
+    events = parse_script(tmp_path / "recordings" / "fade.txt", load_show(show).source_ids)
+    moves = [e for e in events if e.time > 0 and e.address == "/source/voice/position"]
+    assert len(moves) > 20, len(moves)
+    first, last = moves[0], moves[-1]
+    x, y = last.args[0], last.args[1]
+    assert math.degrees(math.atan2(-x, y)) == pytest.approx(-45, abs=1e-3)  # the final value
+    span = last.time - first.time
+    block, push = 128 / 48000, 0.005
+    assert abs(span - (1.0 - 0.030)) <= block + push, span
+
+
+def test_serve_play_replays_a_script_into_the_live_server(tmp_path):
+    show = _show(tmp_path, mappings=[])
+    (tmp_path / "moves.txt").write_text("0.2 /source/voice/azimuth 100\n0.4 /source/hum/gain -6\n0.5 /master/gain -3\n")
+    d = Daemon(show, "--play", str(tmp_path / "moves.txt"))
+    try:
+        st = d.wait(lambda s: s["master"]["gain_db"] == -3, timeout=15)
+        assert next(q for q in st["sources"] if q["id"] == "voice")["azimuth"] == pytest.approx(100, abs=1e-6)
+        assert next(q for q in st["sources"] if q["id"] == "hum")["gain_db"] == -6
+        assert st["status"]["messages"]["applied"].get("script", 0) >= 3
+    finally:
+        rc, out = d.stop()
+    assert rc == 0, out
+    (tmp_path / "bad.txt").write_text("0 /source/voice/azimuth 10\n1 /source/nobody/gain 0\n")
+    r = run_cli("serve", str(show), "--virtual", "--play", str(tmp_path / "bad.txt"), "--osc-port", "0", "--http-port", "0")
+    assert r.returncode == 2 and "bad.txt line 2" in r.stderr and "Traceback" not in r.stderr, r.stderr

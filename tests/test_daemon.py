@@ -198,3 +198,27 @@ def test_hot_reload_edit_break_fix(show_dir):
         st = d.wait(lambda st: not st["status"]["layout_error"] and st["layout"]["speakers"][0]["azimuth"] == 60.0)
     finally:
         assert d.stop() == 0
+
+
+def _nice(pid: int, tid: int) -> int:
+    fields = Path(f"/proc/{pid}/task/{tid}/stat").read_text().rsplit(")", 1)[1].split()
+    return int(fields[16])  # field 19 of proc(5): nice
+
+
+@pytest.mark.skipif(not Path("/proc/self/task").is_dir(), reason="needs Linux /proc")
+def test_the_control_process_yields_to_the_audio_and_a_restarted_child_does_not(show_dir):
+    """Under CPU contention the audio comes first: the daemon's event-loop thread runs at
+    nice 10, the audio child at the normal priority, also after a restart."""
+    d = Daemon(show_dir)
+    try:
+        st = d.state()
+        child = st["status"]["audio"]["pid"]
+        assert _nice(d.proc.pid, d.proc.pid) == 10
+        assert _nice(child, child) == 0
+        os.kill(child, signal.SIGKILL)
+        st = d.wait(lambda s: s["status"]["audio"].get("pid") not in (None, child) and s["status"]["audio"]["state"] == "running",
+                    timeout=20)  # fmt: skip
+        new = st["status"]["audio"]["pid"]
+        assert _nice(new, new) == 0
+    finally:
+        assert d.stop() == 0

@@ -22,6 +22,7 @@ Counters (callbacks, xruns, ...) are summed over every child the link has run.
 
 from __future__ import annotations
 
+import concurrent.futures
 import multiprocessing as mp
 import os
 import signal
@@ -187,6 +188,11 @@ class AudioLink:
         self._panic = False
 
         self._ctx = mp.get_context("spawn")
+        # children are started from a thread of their own, created with the first start: it
+        # keeps the priority the process had then, so that a control process which lowers
+        # its own threads' priority afterwards (the daemon does) still starts every new
+        # audio child at the normal priority (an unprivileged process cannot raise it back)
+        self._spawner = concurrent.futures.ThreadPoolExecutor(max_workers=1, thread_name_prefix="fieldmix-spawn")
         self._shm: Optional[AudioShm] = None
         self._old_shm: list[AudioShm] = []  # segments the current child may still be reading
         self._proc = None
@@ -320,7 +326,7 @@ class AudioLink:
         env = dict(C.THREAD_ENV)
         env["JACK_NO_START_SERVER"] = "1"
         with _child_environment(env):
-            proc.start()
+            self._spawner.submit(proc.start).result()
         child_conn.close()  # the child holds its own end; EOF now means the child is gone
         self._proc, self._conn = proc, parent_conn
         self._procs_for_cleanup[:] = [proc]
