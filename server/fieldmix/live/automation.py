@@ -119,31 +119,29 @@ class Automation:
                 self._wake.clear()
                 await self._wake.wait()
             self._wake.clear()
-            t0 = loop.time()
             self.tick()
-            delay = self._next_delay()
+            delay = self._next_delay()  # from the clock after the tick
             try:
-                await asyncio.wait_for(self._wake.wait(), max(0.0, delay - (loop.time() - t0)))
+                await asyncio.wait_for(self._wake.wait(), delay)
             except asyncio.TimeoutError:
                 pass
 
     def _next_delay(self) -> float:
-        """The control period, or less when a fade's final target is due sooner."""
+        """The control period, or less when a fade's final target (or a wait, or a chain) is
+        due sooner; already due: at once (the tick before it ran a little early)."""
         d = self.period
         st = self.cues.status(self.clock())
         for r in st.get("running", ()):
             rem = r.get("remaining")
             if isinstance(rem, (int, float)) and rem > 0:
-                due = rem - self.lookahead  # the final target is pushed one glide before the end
-                if 0 < due < d:
-                    d = due
+                d = min(d, rem - self.lookahead)  # the final target is pushed one glide before the end
             starts = r.get("starts_in")
-            if isinstance(starts, (int, float)) and 0 < starts < d:
-                d = starts
+            if isinstance(starts, (int, float)):
+                d = min(d, starts - self.lookahead)
         chain = st.get("chain_in")
-        if isinstance(chain, (int, float)) and 0 < chain - self.lookahead < d:
-            d = chain - self.lookahead
-        return max(0.001, d)
+        if isinstance(chain, (int, float)):
+            d = min(d, chain - self.lookahead)
+        return max(0.0005, d)
 
     # ------------------------------------------------------------------ the tick
     def tick(self, now: Optional[float] = None) -> None:
@@ -163,6 +161,8 @@ class Automation:
             mp = self.mappings.tick(now, core.state) if len(self.mappings) else []
             if mp:
                 core.apply_commands(mp, origin="mapping")
+            if cmds or mc or mp:
+                core.flush_now()  # ticks are paced already: no extra coalescing delay
             self._maybe_status(now)
         except Exception:  # a bug here must not stop the show: count, log (bounded), go on
             self.errors += 1

@@ -231,6 +231,13 @@ class LiveCore:
         if self.recorder is not None:
             self.recorder.commit(v)
 
+    def flush_now(self) -> None:
+        """Push changed targets at once, not after the coalescing interval (the automation
+        ticker calls this: its ticks are already paced, and a fade's last value must not wait)."""
+        if self._flush_handle is not None:
+            self._flush_handle.cancel()
+        self.flush()
+
     def push_now(self) -> Optional[int]:
         """Push the current targets at once, changed or not; their version (None without audio)."""
         if self.link is None:
