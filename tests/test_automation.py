@@ -359,14 +359,16 @@ def test_a_lighting_desk_fires_cues_over_udp_and_the_speaker_feeds_follow(tmp_pa
         rc, out = d.stop()
     assert rc == 0, out
     y, sr = sf.read(str(tmp_path / "feeds.wav"), always_2d=True)
-    win = int(0.2 * sr)
+    y = y[: len(y) - int(0.4 * sr)]  # not the fade-out at the stop
+    win = int(0.1 * sr)
     lv = np.array([[_rms_db(y[k:k + win, c]) for c in range(4)] for k in range(0, len(y) - win, win)])
     fl, fr = lv[:, 0], lv[:, 1]
     before = np.where(fl > fr + 30)[0]  # the voice alone on FL (hum is at -60 dB on BL)
     after = np.where(fr > fl + 30)[0]  # ... then alone on FR
     assert before.size and after.size and before[0] < after[0], lv[:, :2]
     loud = fr[after]
-    assert loud.max() - loud.min() == pytest.approx(12.0, abs=0.5)  # cue 2: 12 dB down, on FR
+    # cue 1 brought it to FR at full level, cue 2 took it 12 dB down: the steady levels
+    assert loud.max() - float(np.median(loud[-3:])) == pytest.approx(12.0, abs=0.3), loud
 
 
 def _envelope(x, sr, win):
