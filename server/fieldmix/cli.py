@@ -17,7 +17,7 @@ from .errors import FieldmixError
 
 # the example show and layouts: the package's "configs" (in a clone a link to the top-level
 # configs/ folder; in a wheel a copy of its layouts and shows)
-EXAMPLES = Path(__file__).resolve().parent / "configs"
+EXAMPLES = (Path(__file__).resolve().parent / "configs").resolve()
 EXAMPLE_SHOW = EXAMPLES / "shows" / "harbour.json"
 EXAMPLE_SCRIPT = EXAMPLES / "shows" / "harbour.txt"
 
