@@ -42,7 +42,6 @@ import copy
 import json
 import math
 import numbers
-import os
 import struct
 from dataclasses import dataclass
 from decimal import Decimal
@@ -52,7 +51,7 @@ from typing import Any, Callable, Mapping, Optional, Sequence
 from fieldmix import geometry
 from fieldmix.control import ADDRESSES, Command
 from fieldmix.errors import ConfigError, ControlError
-from fieldmix.jsonload import check_plain, did_you_mean, format_path, oneline, quote, show_value
+from fieldmix.jsonload import check_plain, did_you_mean, format_path, oneline, quote, show_value, write_atomic
 
 # ----------------------------------------------------------------------------- constants
 
@@ -1273,34 +1272,12 @@ def write_show_atomically(path, data: dict) -> None:
     where = oneline(path.name)
     check_plain(data, where)
     payload = (json.dumps(data, indent=2, ensure_ascii=False, allow_nan=False) + "\n").encode("utf-8")
-    folder = path.parent
-    tmp = folder / f".{path.name}.{os.getpid()}-{os.urandom(4).hex()}.tmp"
+    if not path.parent.is_dir():
+        raise ConfigError(where, f"cannot write the show file: folder {oneline(str(path.parent))} does not exist")
     try:
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0), 0o644)
-        try:
-            with os.fdopen(fd, "wb") as f:
-                f.write(payload)
-                f.flush()
-                os.fsync(f.fileno())
-            os.replace(tmp, path)
-        except BaseException:
-            try:
-                os.unlink(tmp)
-            except OSError:
-                pass
-            raise
+        write_atomic(path, payload)
     except OSError as exc:
         raise ConfigError(where, f"cannot write the show file: {oneline(exc.strerror or exc)}") from None
-    try:
-        dfd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(dfd)
-    except OSError:
-        pass
-    finally:
-        os.close(dfd)
 
 
 __all__ = [

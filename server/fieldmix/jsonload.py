@@ -23,6 +23,7 @@ from __future__ import annotations
 import difflib
 import json
 import math
+import os
 import re
 from functools import lru_cache
 from importlib import resources
@@ -435,3 +436,36 @@ def validate(data: Any, schema_name: str, where: str) -> None:
         return
     path = list(err.absolute_path)
     raise ConfigError(join_where(where, path), schema_message(err))
+
+
+# --------------------------------------------------------------------------- writing
+
+
+def write_atomic(path: Path, payload: bytes) -> None:
+    """Write ``payload`` to ``path`` atomically: temp file in the same folder, fsync, rename."""
+    path = Path(path)
+    folder = path.parent
+    folder.mkdir(parents=True, exist_ok=True)
+    tmp = folder / f".{path.name}.{os.getpid()}-{os.urandom(4).hex()}.tmp"
+    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0), 0o644)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(payload)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+    if hasattr(os, "O_DIRECTORY"):  # make the rename itself durable (POSIX)
+        try:
+            dfd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
+            try:
+                os.fsync(dfd)
+            finally:
+                os.close(dfd)
+        except OSError:
+            pass

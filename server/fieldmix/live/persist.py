@@ -49,7 +49,7 @@ from typing import Any, Optional
 
 from ..control import parse_message
 from ..errors import ControlError, FieldmixError
-from ..jsonload import oneline, quote
+from ..jsonload import oneline, quote, write_atomic
 from ..layout import load_layout
 
 log = logging.getLogger("fieldmix.state")
@@ -156,36 +156,6 @@ def _encode(data: dict) -> bytes:
     lines.append(' "sources": [\n' + body + "\n ]" if sources else ' "sources": []')
     lines.append("}\n")
     return "\n".join(lines).encode("utf-8")
-
-
-def write_atomic(path: Path, payload: bytes) -> None:
-    """Write ``payload`` to ``path`` atomically: temp file in the same folder, fsync, rename."""
-    path = Path(path)
-    folder = path.parent
-    folder.mkdir(parents=True, exist_ok=True)
-    tmp = folder / f".{path.name}.{os.getpid()}-{os.urandom(4).hex()}.tmp"
-    fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0), 0o644)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(payload)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
-    if hasattr(os, "O_DIRECTORY"):  # make the rename itself durable (POSIX)
-        try:
-            dfd = os.open(folder, os.O_RDONLY | os.O_DIRECTORY)
-            try:
-                os.fsync(dfd)
-            finally:
-                os.close(dfd)
-        except OSError:
-            pass
 
 
 def remove_stale_temps(path: Path) -> list[Path]:
