@@ -10,19 +10,13 @@ from __future__ import annotations
 
 import json
 import os
-import re
 import signal
-import socket
-import subprocess
-import sys
 import time
-import urllib.request
 from pathlib import Path
 
 import pytest
 
-from conftest import REPO, write_files, write_tone
-from fieldmix.oscwire import decode_packet, encode_message
+from conftest import ServeDaemon, write_files, write_tone
 
 
 def _layout(az_left=30.0, az_right=-30.0):
@@ -55,69 +49,8 @@ def show_dir(tmp_path):
     return tmp_path
 
 
-class Daemon:
-    def __init__(self, show_dir: Path, *extra: str):
-        env = dict(os.environ)
-        env["PYTHONPATH"] = str(REPO / "server") + os.pathsep + env.get("PYTHONPATH", "")
-        self.state_file = show_dir / "state.json"
-        self.proc = subprocess.Popen(
-            [sys.executable, "-m", "fieldmix", "serve", str(show_dir / "show.json"), "--virtual",
-             "--osc-port", "0", "--http-port", "0", "--no-advertise", "--state", str(self.state_file), *extra],
-            env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
-        )  # fmt: skip
-        self.lines: list[str] = []
-        deadline = time.monotonic() + 60
-        self.http = self.udp = None
-        while time.monotonic() < deadline and (self.http is None or self.udp is None):
-            line = self.proc.stdout.readline()
-            if not line:
-                break
-            self.lines.append(line)
-            if m := re.search(r"page\s*: http://127\.0\.0\.1:(\d+)/", line):
-                self.http = int(m.group(1))
-            if m := re.search(r"OSC\s*: 127\.0\.0\.1 udp (\d+)", line):
-                self.udp = int(m.group(1))
-        assert self.http and self.udp, "".join(self.lines)
-        self.sock = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
-        self.sock.bind(("127.0.0.1", 0))
-        self.sock.settimeout(5.0)
-
-    def send(self, address, *args):
-        self.sock.sendto(encode_message(address, args), ("127.0.0.1", self.udp))
-
-    def ping(self):
-        """A barrier: /pong comes back after every packet sent before it was handled."""
-        self.send("/ping")
-        while True:
-            data, _ = self.sock.recvfrom(65536)
-            msgs = [m for _, m in decode_packet(data)]
-            if any(m.address == "/pong" for m in msgs):
-                return
-
-    def state(self):
-        with urllib.request.urlopen(f"http://127.0.0.1:{self.http}/api/state", timeout=5) as r:
-            return json.loads(r.read())
-
-    def wait(self, pred, timeout=5.0):
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            st = self.state()
-            if pred(st):
-                return st
-            time.sleep(0.05)
-        raise AssertionError(f"condition not met; last state: {json.dumps(st)[:2000]}")
-
-    def stop(self, sig=signal.SIGTERM, timeout=10.0):
-        if self.proc.poll() is None:
-            self.proc.send_signal(sig)
-        try:
-            rc = self.proc.wait(timeout)
-        finally:
-            self.sock.close()
-            if self.proc.poll() is None:
-                self.proc.kill()
-                self.proc.wait(5)
-        return rc
+def Daemon(show_dir: Path, *extra: str) -> ServeDaemon:
+    return ServeDaemon(show_dir / "show.json", *extra)
 
 
 def test_osc_moves_reach_the_state_and_sigterm_saves(show_dir):
